@@ -1,0 +1,25 @@
+"""ebm_layers: binary layered energy models (RBMs, deep Boltzmann machines, any layered graph
+of binary units) as composable ``torch.nn`` modules, on CPU."""
+
+from .couplings import DenseCoupling, LateralCoupling
+from .enumeration import ExactStatistics
+from .graph import UpdateSchedule
+from .layers import BinaryLayer
+from .metrics import exact_log_likelihood
+from .model import EnergyModel, dbm, rbm
+from .partition import exact_log_partition
+from .statistics import Statistics
+
+__all__ = [
+    "BinaryLayer",
+    "DenseCoupling",
+    "EnergyModel",
+    "ExactStatistics",
+    "LateralCoupling",
+    "Statistics",
+    "UpdateSchedule",
+    "dbm",
+    "exact_log_likelihood",
+    "exact_log_partition",
+    "rbm",
+]

@@ -1,0 +1,97 @@
+"""One place that validates what users pass in, so every public entry point fails the same way.
+
+Every check raises before anything is modified: a rejected call leaves parameters,
+particles and optimizer state untouched.
+"""
+
+from __future__ import annotations
+
+import numbers
+from collections.abc import Sequence
+
+import torch
+from torch import Tensor
+
+__all__ = ["check_batch", "check_index", "check_size", "check_states"]
+
+
+def check_size(name: str, value: object) -> int:
+    """Return ``value`` as an int after checking it is a positive whole number."""
+    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
+        raise TypeError(f"{name} must be an int, got {value!r} ({type(value).__name__})")
+    if value <= 0:
+        raise ValueError(f"{name} must be positive, got {value}")
+    return int(value)
+
+
+def check_index(name: str, value: object, count: int | None = None) -> int:
+    """Return ``value`` as an int after checking it indexes one of ``count`` layers (any >= 0 if None)."""
+    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
+        raise TypeError(f"{name} must be an int, got {value!r} ({type(value).__name__})")
+    if count is None:
+        if value < 0:
+            raise ValueError(f"{name} must be a layer index >= 0, got {value}")
+    elif not 0 <= value < count:
+        raise ValueError(
+            f"{name} must be a layer index in 0..{count - 1}, got {value}"
+            if count
+            else f"{name}={value} but there are no layers"
+        )
+    return int(value)
+
+
+def check_batch(
+    name: str,
+    x: object,
+    width: int,
+    *,
+    dtype: torch.dtype | None = None,
+    batch: int | None = None,
+) -> Tensor:
+    """Check a batch of states or data: a floating ``(B, width)`` tensor, ``B > 0``, finite, in [0, 1].
+
+    Binary states and Bernoulli means are both accepted. ``dtype`` (the model's) and ``batch``
+    (the batch size of other tensors passed with this one) are enforced when given.
+    """
+    if not isinstance(x, Tensor):
+        raise TypeError(f"{name} must be a torch.Tensor, got {type(x).__name__}")
+    if not x.is_floating_point():
+        raise TypeError(f"{name} must have a floating dtype, got {x.dtype}")
+    if dtype is not None and x.dtype != dtype:
+        raise TypeError(
+            f"{name} has dtype {x.dtype} but the model's parameters are {dtype}; "
+            "convert one of them with .to()"
+        )
+    if x.ndim != 2:
+        raise ValueError(f"{name} must be 2-D (batch, {width}), got shape {tuple(x.shape)}")
+    if x.shape[1] != width:
+        raise ValueError(f"{name} must have {width} columns, got shape {tuple(x.shape)}")
+    if x.shape[0] == 0:
+        raise ValueError(f"{name} is an empty batch (shape {tuple(x.shape)})")
+    if batch is not None and x.shape[0] != batch:
+        raise ValueError(f"{name} has batch size {x.shape[0]}, expected {batch} like the others")
+    values = x.detach()
+    finite = torch.isfinite(values)
+    if not bool(finite.all()):
+        raise ValueError(f"{name} holds {int((~finite).sum())} non-finite values (NaN or Inf)")
+    low, high = float(values.min()), float(values.max())
+    if low < 0.0 or high > 1.0:
+        raise ValueError(
+            f"{name} must lie in [0, 1] (binary states or Bernoulli means), got values from {low} to {high}"
+        )
+    return x
+
+
+def check_states(name: str, states: object, sizes: Sequence[int], dtype: torch.dtype) -> list[Tensor]:
+    """Check one ``(B, n_i)`` tensor per layer, all with the same batch size; return them as a list."""
+    if isinstance(states, Tensor) or not isinstance(states, Sequence):
+        raise TypeError(
+            f"{name} must be a list of {len(sizes)} tensors (one per layer), got {type(states).__name__}"
+        )
+    if len(states) != len(sizes):
+        raise ValueError(f"{name} must hold {len(sizes)} tensors (one per layer), got {len(states)}")
+    batch = None
+    for i, (x, width) in enumerate(zip(states, sizes)):
+        check_batch(f"{name}[{i}]", x, width, dtype=dtype, batch=batch)
+        batch = x.shape[0]
+    return list(states)

@@ -1,0 +1,122 @@
+"""Pure tensor functions behind every model: energy terms, conditional inputs, free energies,
+pair statistics and Bernoulli draws.
+
+The modules only hold state and call these. A model's graph is passed as ``edges``: one
+``(a, b)`` pair per coupling, in coupling order, with ``weights[k]`` of shape ``(n_a, n_b)``;
+``a == b`` marks a lateral coupling whose weight is the full symmetric zero-diagonal
+``(n_a, n_a)`` matrix, with energy term ``-1/2 x W x^T``.
+
+``states`` are indexable by layer (a list, or a dict holding only some layers); every
+state is ``(B, n_i)``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+
+import torch
+from torch import Tensor
+from torch.nn.functional import softplus
+
+__all__ = [
+    "bernoulli",
+    "coupling_input",
+    "energy",
+    "layer_logits",
+    "marginal_free_energy",
+    "pair_mean",
+]
+
+Edge = tuple[int, int]
+States = Sequence[Tensor] | Mapping[int, Tensor]
+
+
+def coupling_input(edge: Edge, weight: Tensor, target: int, states: States) -> Tensor:
+    """Input ``(B, n_target)`` that one coupling sends to layer ``target`` from the other end.
+
+    For a lateral coupling (``a == b == target``) this is ``x_a @ W``; the zero diagonal
+    keeps a unit's own state out of its input.
+    """
+    a, b = edge
+    if target == b:
+        return states[a] @ weight
+    return states[b] @ weight.mT
+
+
+def layer_logits(
+    states: States,
+    target: int,
+    biases: Sequence[Tensor],
+    weights: Sequence[Tensor],
+    edges: Sequence[Edge],
+) -> Tensor:
+    """Total input ``b_t + sum_m W_tm x_m`` to layer ``target``, shape ``(B, n_target)``.
+
+    ``sigmoid`` of it is ``p(x_target = 1 | all other units)``, unit by unit; only the layers
+    coupled to ``target`` need to be present in ``states``.
+    """
+    logits = biases[target]
+    for edge, weight in zip(edges, weights):
+        if target in edge:
+            logits = logits + coupling_input(edge, weight, target, states)
+    if logits.ndim == 1:  # no coupling touches the layer; batch of one when no state is given
+        first = next(iter(states.values() if isinstance(states, Mapping) else states), None)
+        logits = logits.expand(1 if first is None else first.shape[0], -1)
+    return logits
+
+
+def _pair_energy(edge: Edge, weight: Tensor, states: States) -> Tensor:
+    """Energy ``(B,)`` of one coupling: ``-x_a W x_b^T``, or ``-1/2 x W x^T`` when lateral."""
+    a, b = edge
+    term = ((states[a] @ weight) * states[b]).sum(-1)
+    return -0.5 * term if a == b else -term
+
+
+def energy(
+    states: States, biases: Sequence[Tensor], weights: Sequence[Tensor], edges: Sequence[Edge]
+) -> Tensor:
+    """Energy ``E(x) = -sum_l b_l.x_l - sum_couplings x_a^T W x_b`` of full joint states, ``(B,)``."""
+    total = -sum(states[i] @ bias for i, bias in enumerate(biases))
+    for edge, weight in zip(edges, weights):
+        total = total + _pair_energy(edge, weight, states)
+    return total
+
+
+def marginal_free_energy(
+    given: Mapping[int, Tensor],
+    biases: Sequence[Tensor],
+    weights: Sequence[Tensor],
+    edges: Sequence[Edge],
+) -> Tensor:
+    """Free energy ``(B,)`` of the ``given`` layers' states with every other layer summed out.
+
+    ``F = E(given alone) - sum_k sum_j softplus(logits_kj)`` over summed-out layers ``k``,
+    exact only when no coupling joins two summed-out layers (a lateral coupling counts); the
+    caller checks that.
+    """
+    total = -sum(x @ biases[i] for i, x in given.items())
+    for edge, weight in zip(edges, weights):
+        if edge[0] in given and edge[1] in given:
+            total = total + _pair_energy(edge, weight, given)
+    for k in range(len(biases)):
+        if k not in given:
+            total = total - softplus(layer_logits(given, k, biases, weights, edges)).sum(-1)
+    return total
+
+
+def pair_mean(x_a: Tensor, x_b: Tensor, sample_weights: Tensor | None = None) -> Tensor:
+    """Average outer product ``<x_a^T x_b>`` over the batch, ``(n_a, n_b)``.
+
+    With ``sample_weights`` ``(B,)`` (summing to one) it is the weighted sum instead.
+    """
+    if sample_weights is None:
+        return x_a.mT @ x_b / x_a.shape[0]
+    return (x_a * sample_weights[:, None]).mT @ x_b
+
+
+def bernoulli(logits: Tensor, generator: torch.Generator) -> Tensor:
+    """Draw binary units with ``p(x = 1) = sigmoid(logits)``; same shape and dtype as ``logits``.
+
+    The one place the library draws Bernoulli units, so a faster draw can replace it.
+    """
+    return torch.bernoulli(torch.sigmoid(logits), generator=generator)
