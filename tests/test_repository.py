@@ -1,0 +1,55 @@
+"""The repository's promises: README commands, CI script, packaging, and the quickstart runs."""
+
+import re
+import subprocess
+import sys
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+TORCH_PIN = "torch==2.13.0"
+
+
+def _fenced_blocks(text: str) -> list[list[str]]:
+    """The lines of each fenced code block of a Markdown text, in order."""
+    return [
+        block.strip("\n").splitlines() for block in re.findall(r"^```[^\n]*\n(.*?)^```", text, re.M | re.S)
+    ]
+
+
+def test_readme_has_exactly_two_one_line_commands_first():
+    blocks = _fenced_blocks((ROOT / "README.md").read_text())
+    demo, tests = blocks[0], blocks[1]
+    assert len(demo) == 1 and len(tests) == 1
+    assert TORCH_PIN in demo[0] and "examples/quickstart.py" in demo[0] and "pytest" not in demo[0]
+    assert TORCH_PIN in tests[0] and "python -m pytest" in tests[0] and "examples/" not in tests[0]
+
+
+def test_ci_runs_ruff_then_exactly_the_readme_test_command():
+    test_command = _fenced_blocks((ROOT / "README.md").read_text())[1][0]
+    lines = [line for line in (ROOT / ".ci" / "run").read_text().splitlines() if line and line[0] != "#"]
+    assert "set -euo pipefail" in lines  # pytest's exit code 5 (no tests collected) fails CI
+    assert lines.index("ruff check .") < lines.index(test_command)
+    assert lines[-1] == test_command
+
+
+def test_pyproject_keeps_a_torch_range():
+    text = (ROOT / "pyproject.toml").read_text()
+    assert '"torch>=2.2"' in text and f'"{TORCH_PIN}' not in text
+
+
+def test_gitignore_covers_environments_caches_outputs_and_checkpoints():
+    ignored = (ROOT / ".gitignore").read_text().splitlines()
+    for pattern in (".venv/", "__pycache__/", "out/", "*.pt"):
+        assert pattern in ignored
+
+
+def test_quickstart_runs_and_prints_exact_log_partition():
+    result = subprocess.run(
+        [sys.executable, str(ROOT / "examples" / "quickstart.py")],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.count("exact log partition function:") == 2
+    assert "E(v, h)" in result.stdout
