@@ -21,17 +21,14 @@ class _ExactLogPartition(torch.autograd.Function):
 
     @staticmethod
     def forward(ctx, model: EnergyModel, max_states: int, *parameters: Tensor) -> Tensor:
-        log_z, stats = exact_moments(model, statistics=any(ctx.needs_input_grad[2:]), max_states=max_states)
-        ctx.stats, ctx.edges = stats, model.edges
-        ctx.dtypes = [p.dtype for p in parameters]
+        log_z, ctx.stats = exact_moments(model, max_states=max_states)
+        ctx.edges, ctx.dtypes = model.edges, [p.dtype for p in parameters]
         return log_z
 
     @staticmethod
     @once_differentiable
     def backward(ctx, grad: Tensor):
         stats = ctx.stats
-        if stats is None:
-            return (None, None, *(None for _ in ctx.dtypes))
         # -E contains b.x, x_a W x_b^T, and 1/2 x L x^T for a lateral L (taken entrywise).
         pair_grads = [p * 0.5 if a == b else p for p, (a, b) in zip(stats.pairs, ctx.edges)]
         grads = [grad * g for g in stats.means + pair_grads]
@@ -52,9 +49,12 @@ def exact_log_partition(model: EnergyModel, *, max_states: int = MAX_STATES) -> 
         >>> model = el.rbm(4, 2)
         >>> with torch.no_grad():
         ...     _ = model.couplings[0].weight.zero_()
-        >>> round(float(el.exact_log_partition(model)), 4)  # 6 free units: 6 log 2
+        >>> round(el.exact_log_partition(model).item(), 4)  # 6 free units: 6 log 2
         4.1589
     """
     if not isinstance(model, EnergyModel):
         raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
-    return _ExactLogPartition.apply(model, max_states, *model.biases(), *model.weights())
+    parameters = [*model.biases(), *model.weights()]
+    if torch.is_grad_enabled() and any(p.requires_grad for p in parameters):
+        return _ExactLogPartition.apply(model, max_states, *parameters)
+    return exact_moments(model, statistics=False, max_states=max_states)[0]

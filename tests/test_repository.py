@@ -53,3 +53,9 @@ def test_quickstart_runs_and_prints_exact_log_partition():
     assert result.returncode == 0, result.stderr
     assert result.stdout.count("exact log partition function:") == 2
     assert "E(v, h)" in result.stdout
+
+
+def test_readme_python_example_runs():
+    text = (ROOT / "README.md").read_text()
+    (example,) = re.findall(r"^```python\n(.*?)^```", text, re.M | re.S)
+    exec(compile(example, "README.md", "exec"), {})
