@@ -1,0 +1,436 @@
+"""Ground truth: the library against brute-force enumeration of every joint state.
+
+The reference is written from the mathematics alone, without ``ebm_layers.functional``: all
+units are stacked into one vector x of N units and E(x) = -b.x - 1/2 x J x^T, with J the
+symmetric interaction matrix assembled from the couplings (a dense W between layers a and b
+fills block (a, b) with W and block (b, a) with W^T; a lateral L fills block (a, a)). Then
+log Z, marginals, conditionals and moments are sums over all 2^N states. Every check below
+names this source, "exact enumeration (mathematics)", or the reference library it uses.
+"""
+
+from __future__ import annotations
+
+import copy
+import itertools
+from dataclasses import dataclass
+
+import pytest
+import torch
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy.special import logsumexp
+from torch import Tensor
+from torch.nn.functional import softplus
+
+import ebm_layers as el
+from ebm_layers import enumeration
+
+# Library and reference both compute in float64, so they may differ by rounding only.
+RTOL, ATOL = 1e-9, 1e-12
+EXAMPLES = settings(derandomize=True, deadline=None, max_examples=20)
+MAX_UNITS = 12  # 4096 joint states: enumeration of everything stays cheap
+
+# Model shapes: (number of layers, edges in coupling order); a == b marks a lateral coupling.
+SHAPES = {
+    "rbm": (2, ((0, 1),)),
+    "chain3": (3, ((0, 1), (1, 2))),
+    "chain4": (4, ((0, 1), (1, 2), (2, 3))),
+    "skip": (3, ((0, 1), (1, 2), (0, 2))),
+    "pairwise": (1, ((0, 0),)),
+    "semi_restricted": (2, ((0, 0), (0, 1))),
+    "hidden_lateral_chain": (3, ((0, 1), (1, 2), (1, 1))),
+    "backwards": (2, ((1, 0),)),
+    "hidden_star": (3, ((0, 1), (2, 0))),  # two hidden layers on the visible one, one declared backwards
+    "uncoupled_layer": (3, ((0, 1),)),  # layer 2 has no coupling at all
+    "no_couplings": (2, ()),
+}
+# Closed-form F(v) exactly when every coupling touches the visible layer (no two hidden units coupled).
+CLOSED_FORM = [name for name, (_, edges) in SHAPES.items() if all(0 in edge for edge in edges)]
+NOT_CLOSED_FORM = [name for name in SHAPES if name not in CLOSED_FORM]
+
+
+def build(shape: str, sizes: tuple[int, ...]) -> el.EnergyModel:
+    """A float64 model of ``shape``; plain chains come from the builders rbm() / dbm()."""
+    _, edges = SHAPES[shape]
+    generator = torch.Generator().manual_seed(0)
+    if edges == tuple((k, k + 1) for k in range(len(sizes) - 1)):
+        builder = el.rbm if len(sizes) == 2 else el.dbm
+        return builder(*sizes, generator=generator, dtype=torch.float64)
+    layers = [el.BinaryLayer(n, dtype=torch.float64) for n in sizes]
+    couplings = [
+        el.LateralCoupling(a, sizes[a], dtype=torch.float64)
+        if a == b
+        else el.DenseCoupling(a, b, sizes[a], sizes[b], dtype=torch.float64)
+        for a, b in edges
+    ]
+    model = el.EnergyModel(layers, couplings)
+    model.reset_parameters(generator)
+    return model
+
+
+@torch.no_grad()
+def randomize(model: el.EnergyModel, seed: int, scale: float = 1.5) -> el.EnergyModel:
+    """Set every bias and weight to N(0, scale^2) draws, so that no energy term is negligible."""
+    generator = torch.Generator().manual_seed(seed)
+
+    def draw(like: Tensor) -> Tensor:
+        return scale * torch.randn(like.shape, generator=generator, dtype=like.dtype)
+
+    for layer in model.layers:
+        layer.bias.copy_(draw(layer.bias))
+    for coupling in model.couplings:
+        if coupling.a == coupling.b:
+            upper = draw(coupling.weight).triu(1)
+            coupling.weight = upper + upper.T  # parametrize right_inverse: symmetric, zero diagonal
+        else:
+            coupling.weight.copy_(draw(coupling.weight))
+    return model
+
+
+def draw_model(data: st.DataObject, shape: str) -> el.EnergyModel:
+    """A random model of ``shape``: layer sizes 1..4 (at most MAX_UNITS units), random parameters."""
+    num_layers, _ = SHAPES[shape]
+    sizes = data.draw(
+        st.lists(st.integers(1, 4), min_size=num_layers, max_size=num_layers).filter(
+            lambda s: sum(s) <= MAX_UNITS
+        ),
+        label="sizes",
+    )
+    seed = data.draw(st.integers(0, 2**32 - 1), label="seed")
+    return randomize(build(shape, tuple(sizes)), seed)
+
+
+def interaction_matrix(model: el.EnergyModel, lateral_factor: float = 1.0) -> Tensor:
+    """The symmetric (N, N) float64 J of E(x) = -b.x - 1/2 x J x^T over the stacked units.
+
+    Differentiable in the weights (a lateral coupling enters through ``coupling.weight``).
+    ``lateral_factor`` scales the lateral blocks; values other than 1 are for negative controls.
+    """
+    ends = list(itertools.accumulate(model.sizes, initial=0))
+    block = [slice(start, stop) for start, stop in zip(ends, ends[1:])]
+    interaction = torch.zeros(ends[-1], ends[-1], dtype=torch.float64)
+    for coupling in model.couplings:
+        a, b = coupling.a, coupling.b
+        weight = coupling.weight.to(torch.float64)
+        if a == b:
+            interaction[block[a], block[a]] = lateral_factor * weight
+        else:
+            interaction[block[a], block[b]] = weight
+            interaction[block[b], block[a]] = weight.T
+    return interaction
+
+
+def direct_energy(model: el.EnergyModel, x: Tensor, lateral_factor: float = 1.0) -> Tensor:
+    """E(x) ``(B,)`` of stacked float64 states ``x`` ``(B, N)``, differentiable in the parameters."""
+    bias = torch.cat([layer.bias.to(torch.float64) for layer in model.layers])
+    interaction = interaction_matrix(model, lateral_factor)
+    return -(x @ bias) - 0.5 * ((x @ interaction) * x).sum(1)
+
+
+@dataclass
+class Reference:
+    """Every joint state of a model with its energy and probability, by exact enumeration."""
+
+    x: Tensor  # (2^N, N); row r holds the binary digits of r, unit 0 the most significant
+    states: list[Tensor]  # the columns of x split by layer, (2^N, n_i) each
+    energy: Tensor  # (2^N,)
+    log_z: Tensor  # 0-d
+    prob: Tensor  # (2^N,)
+
+
+def brute_force(model: el.EnergyModel, lateral_factor: float = 1.0) -> Reference:
+    """Exact enumeration (mathematics): Z = sum_x exp(-E(x)) over all 2^N joint states, in float64."""
+    x = torch.tensor(list(itertools.product((0.0, 1.0), repeat=sum(model.sizes))), dtype=torch.float64)
+    with torch.no_grad():
+        energy = direct_energy(model, x, lateral_factor)
+    log_z = torch.logsumexp(-energy, 0)
+    return Reference(x, list(x.split(model.sizes, dim=1)), energy, log_z, torch.exp(-energy - log_z))
+
+
+def assert_exact_statistics(stats: el.Statistics, model: el.EnergyModel, ref: Reference) -> None:
+    """Exact enumeration (mathematics): ``stats`` hold E[x_i] per layer and E[x_a^T x_b] per coupling.
+
+    A lateral coupling's (n, n) average E[x^T x] keeps its diagonal E[x_i].
+    """
+    assert_all_close(stats.means, [ref.prob @ x for x in ref.states])
+    pairs = [ref.states[c.a].T @ (ref.prob[:, None] * ref.states[c.b]) for c in model.couplings]
+    assert_all_close(stats.pairs, pairs)
+
+
+def flip_conditionals(ref: Reference) -> Tensor:
+    """Exact enumeration (mathematics): p(x_g = 1 | all other units) for every state and unit, (2^N, N).
+
+    It is p(x with unit g = 1) / (p(x with unit g = 1) + p(x with unit g = 0)); unit g is bit
+    N-1-g of the row index, so both states are found by setting or clearing that bit.
+    """
+    rows = torch.arange(len(ref.x))[:, None]
+    bits = 1 << torch.arange(ref.x.shape[1] - 1, -1, -1)
+    p_on, p_off = ref.prob[rows | bits], ref.prob[rows & ~bits]
+    return p_on / (p_on + p_off)
+
+
+def visible_marginal(ref: Reference, neg_energy: Tensor) -> tuple[Tensor, Tensor]:
+    """Exact enumeration (mathematics): every visible state v ``(2^n0, n0)`` and its log p(v).
+
+    ``neg_energy`` is -E at the rows of ``ref.x`` (differentiable when the caller needs it).
+    The visible units are the most significant bits of the row index, so the states sharing
+    one v are consecutive rows.
+    """
+    n_visible = ref.states[0].shape[1]
+    groups = 2**n_visible
+    v = ref.states[0].reshape(groups, -1, n_visible)[:, 0]
+    return v, neg_energy.reshape(groups, -1).logsumexp(1) - neg_energy.logsumexp(0)
+
+
+def free_parameters(model: el.EnergyModel) -> list[Tensor]:
+    """Biases, then each coupling's free tensor (a lateral coupling's parametrize original)."""
+    weights = [c.parametrizations.weight.original if c.a == c.b else c.weight for c in model.couplings]
+    return [layer.bias for layer in model.layers] + weights
+
+
+def assert_close(actual: Tensor, expected: Tensor, rtol: float = RTOL, atol: float = ATOL) -> None:
+    torch.testing.assert_close(actual.detach(), expected.detach(), rtol=rtol, atol=atol)
+
+
+def assert_all_close(actual: list[Tensor], expected: list[Tensor]) -> None:
+    assert len(actual) == len(expected)
+    for got, want in zip(actual, expected):
+        assert_close(got, want)
+
+
+def close(actual: Tensor, expected: Tensor) -> bool:
+    """The tolerance of ``assert_close``, as a bool for negative controls."""
+    return torch.allclose(actual.detach(), expected.detach(), rtol=RTOL, atol=ATOL)
+
+
+@pytest.mark.parametrize("shape", SHAPES)
+@EXAMPLES
+@given(data=st.data())
+def test_energy_matches_direct_formula(shape, data):
+    model = draw_model(data, shape)
+    ref = brute_force(model)
+    # exact enumeration (mathematics): the direct formula at every joint state.
+    assert_close(model.energy(ref.states), ref.energy)
+
+
+@pytest.mark.parametrize("shape", SHAPES)
+@EXAMPLES
+@given(data=st.data())
+def test_log_partition_matches_enumeration(shape, data):
+    model = draw_model(data, shape)
+    log_z = el.exact_log_partition(model)
+    assert log_z.dtype == torch.float64 and log_z.shape == ()
+    # exact enumeration (mathematics): log sum_x exp(-E(x)) over every joint state.
+    assert_close(log_z, brute_force(model).log_z)
+
+
+@pytest.mark.parametrize("shape", CLOSED_FORM)
+@EXAMPLES
+@given(data=st.data())
+def test_log_likelihood_matches_marginal(shape, data):
+    model = draw_model(data, shape)
+    ref = brute_force(model)
+    v, log_p = visible_marginal(ref, -ref.energy)
+    # exact enumeration (mathematics): log p(v) = log sum_h exp(-E(v, h)) - log Z, for every v.
+    assert_close(-model.free_energy(v) - ref.log_z, log_p)
+    log_likelihood = el.exact_log_likelihood(model, v)
+    assert_close(log_likelihood, log_p)
+    # The training signal too: autograd of both sides agrees for every parameter.
+    params = free_parameters(model)
+    _, differentiable = visible_marginal(ref, -direct_energy(model, ref.x))
+    got = torch.autograd.grad(log_likelihood.sum(), params)
+    assert_all_close(list(got), list(torch.autograd.grad(differentiable.sum(), params)))
+
+
+@pytest.mark.parametrize("shape", NOT_CLOSED_FORM)
+def test_free_energy_refused_when_hidden_units_are_coupled(shape):
+    num_layers, _ = SHAPES[shape]
+    model = build(shape, (2,) * num_layers)
+    v = torch.zeros(3, 2, dtype=torch.float64)
+    with pytest.raises(ValueError, match="no closed-form free energy"):
+        model.free_energy(v)
+    with pytest.raises(ValueError, match="no closed-form free energy"):
+        el.exact_log_likelihood(model, v)
+
+
+@pytest.mark.parametrize("shape", SHAPES)
+@EXAMPLES
+@given(data=st.data())
+def test_exact_statistics_match_enumeration(shape, data):
+    model = draw_model(data, shape)
+    # exact enumeration (mathematics): E[x_i] and E[x_a^T x_b] under p(x) = exp(-E(x)) / Z.
+    assert_exact_statistics(el.ExactStatistics(model).statistics(), model, brute_force(model))
+
+
+@pytest.mark.parametrize("shape", SHAPES)
+@EXAMPLES
+@given(data=st.data())
+def test_conditionals_match_joint_probability_ratio(shape, data):
+    model = draw_model(data, shape)
+    ref = brute_force(model)
+    # exact enumeration (mathematics): the joint-probability ratio at every state and unit.
+    expected = flip_conditionals(ref).split(model.sizes, dim=1)
+    for i in range(len(model.layers)):
+        logits = model.conditional_logits(ref.states, i)
+        assert_close(torch.sigmoid(logits), expected[i])
+        if (i, i) not in model.edges:
+            # Without lateral couplings a layer's units are independent given the other layers.
+            flipped = list(ref.states)
+            flipped[i] = 1.0 - flipped[i]
+            assert torch.equal(model.conditional_logits(flipped, i), logits)
+
+
+@pytest.mark.parametrize("shape", SHAPES)
+@EXAMPLES
+@given(data=st.data())
+def test_log_partition_gradient_matches_autograd_of_enumeration(shape, data):
+    model = draw_model(data, shape)
+    params = free_parameters(model)
+    assert {id(p) for p in params} == {id(p) for p in model.parameters()}
+    got = torch.autograd.grad(el.exact_log_partition(model), params)
+    # exact enumeration (mathematics): autograd through logsumexp(-E(x)) over every joint state.
+    ref = brute_force(model)
+    want = torch.autograd.grad(torch.logsumexp(-direct_energy(model, ref.x), 0), params)
+    assert_all_close(list(got), list(want))
+    # Mathematics: d log Z / d theta = E[-dE/d theta]: E[x] for a bias, E[x_a^T x_b] for a dense
+    # weight, E[x_i x_j] for a free lateral entry i < j (it enters -E once, as L_ij x_i x_j).
+    stats = el.ExactStatistics(model).statistics()
+    pairs = [p.triu(1) if c.a == c.b else p for p, c in zip(stats.pairs, model.couplings)]
+    assert_all_close(list(got), stats.means + pairs)
+
+
+@pytest.mark.parametrize("shape", SHAPES)
+@EXAMPLES
+@given(data=st.data())
+def test_float32_model_enumerates_in_float64(shape, data):
+    model = draw_model(data, shape)
+    model32 = copy.deepcopy(model).to(torch.float32)
+    log_z = el.exact_log_partition(model32)
+    assert log_z.dtype == torch.float64
+    # exact enumeration (mathematics) of the same float32 parameters, summed in float64.
+    assert_close(log_z, brute_force(model32).log_z)
+    # Only the parameters' rounding to float32 separates it from the float64 model.
+    assert_close(log_z, brute_force(model).log_z, rtol=1e-5, atol=1e-5)
+    grads = torch.autograd.grad(log_z, free_parameters(model32))
+    want = torch.autograd.grad(el.exact_log_partition(model), free_parameters(model))
+    assert all(g.dtype == torch.float32 for g in grads)
+    for got, expected in zip(grads, want):
+        assert_close(got.double(), expected, rtol=1e-5, atol=1e-5)
+
+
+def exact_results(model: el.EnergyModel) -> list[Tensor]:
+    """log Z, then the exact statistics (means, then pairs), as one flat list."""
+    stats = el.ExactStatistics(model).statistics()
+    return [el.exact_log_partition(model), *stats.means, *stats.pairs]
+
+
+@pytest.mark.parametrize("shape", SHAPES)
+@EXAMPLES
+@given(data=st.data())
+def test_chunked_enumeration_changes_nothing(shape, data):
+    model = draw_model(data, shape)
+    whole = exact_results(model)
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr(enumeration, "_CHUNK_ELEMENTS", 8)  # at most 8 // N rows (>= 1) per chunk
+        assert_all_close(exact_results(model), whole)
+
+
+@pytest.mark.parametrize(("shape", "sizes"), [("skip", (4, 4, 4)), ("semi_restricted", (6, 6))])
+def test_chunked_enumeration_with_large_weights(shape, sizes):
+    # For these 12-unit models weights of scale 30 keep -E below ~410; 100 pushes it past float64's
+    # exp range (~709), and with one enumerated state per chunk the chunks' weights span hundreds
+    # of orders of magnitude, so the running rescaling between chunks is what gets tested.
+    model = randomize(build(shape, sizes), seed=3, scale=100.0)
+    ref = brute_force(model)
+    # negative control: naive exp(-E) overflows float64, so only a stable log-sum-exp gets it right.
+    assert not torch.isfinite(torch.exp(-ref.energy).sum())
+    expected = torch.tensor(logsumexp(-ref.energy.numpy()), dtype=torch.float64)  # scipy.special.logsumexp
+    assert_close(ref.log_z, expected)
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr(enumeration, "_CHUNK_ELEMENTS", 8)
+        chunks = []
+        per_chunk = enumeration.F.marginal_free_energy  # the enumeration calls it once per chunk
+
+        def counted(*args):
+            chunks.append(args)
+            return per_chunk(*args)
+
+        patch.setattr(enumeration.F, "marginal_free_energy", counted)
+        log_z = el.exact_log_partition(model)
+        stats = el.ExactStatistics(model).statistics()
+    # The patch took effect: two enumerations of at least 2^6 cover states, one state per chunk.
+    assert len(chunks) >= 2 * 2**6
+    assert_close(log_z, expected)
+    assert_exact_statistics(stats, model, ref)  # exact enumeration (mathematics)
+
+
+@pytest.mark.parametrize(
+    ("shape", "sizes", "cover"),
+    [
+        ("rbm", (8, 3), (1,)),
+        ("rbm", (3, 8), (0,)),
+        ("chain3", (3, 5, 3), (1,)),
+        ("chain3", (2, 5, 2), (0, 2)),
+        ("hidden_lateral_chain", (2, 5, 2), (1,)),
+        ("hidden_star", (4, 1, 1), (1, 2)),
+        ("pairwise", (5,), (0,)),
+        ("uncoupled_layer", (4, 2, 3), (1,)),
+        ("no_couplings", (3, 2), ()),
+    ],
+)
+def test_enumeration_cover_is_smallest(shape, sizes, cover):
+    # Mathematics, worked out by hand: the layers with the fewest units that touch every coupling
+    # (a lateral layer touches its own), ties to fewer layers, then lower indices.
+    assert enumeration.enumeration_cover(build(shape, sizes)) == cover
+
+
+def test_too_many_states_refused_with_the_count():
+    model = el.rbm(30, 30)
+    with pytest.raises(ValueError, match=r"2\^30"):
+        el.exact_log_partition(model)
+    with pytest.raises(ValueError, match=r"2\^30"):
+        el.ExactStatistics(model)
+    with pytest.raises(ValueError, match=r"2\^4"):
+        el.exact_log_partition(el.rbm(5, 4), max_states=2**3)
+
+
+@EXAMPLES
+@given(data=st.data())
+def test_uncoupled_units_give_softplus_log_partition(data):
+    model = draw_model(data, "no_couplings")
+    bias = torch.cat([layer.bias for layer in model.layers])
+    # Mathematics: independent units, Z = prod_i (1 + exp(b_i)), p(x_i = 1) = sigmoid(b_i).
+    assert_close(el.exact_log_partition(model), softplus(bias).sum())
+    assert_close(torch.cat(el.ExactStatistics(model).statistics().means), torch.sigmoid(bias))
+
+
+def test_negative_controls_have_power():
+    """The comparisons above would notice the mistakes a library could plausibly make."""
+    model = randomize(build("hidden_lateral_chain", (3, 3, 3)), seed=11)
+    ref = brute_force(model)
+    log_z = el.exact_log_partition(model)
+    assert_close(log_z, ref.log_z)
+
+    # negative control: a lateral term -x L x^T without the 1/2 (J block 2 L) is told apart.
+    doubled = brute_force(model, lateral_factor=2.0)
+    assert not close(model.energy(ref.states), doubled.energy)
+    assert not close(log_z, doubled.log_z)
+
+    # negative control: one weight moved by 1e-3 changes log Z beyond the tolerance.
+    nudged = copy.deepcopy(model)
+    with torch.no_grad():
+        nudged.couplings[0].weight[0, 0] += 1e-3
+    assert not close(log_z, brute_force(nudged).log_z)
+
+    # negative control: a conditional of the lateral layer without its lateral input disagrees
+    # with the joint-probability ratio, while the full input b + x J agrees.
+    expected = flip_conditionals(ref).split(model.sizes, dim=1)[1]
+    bias = torch.cat([layer.bias for layer in model.layers]).detach()
+    for lateral_factor, agrees in ((1.0, True), (0.0, False)):
+        logits = (bias + ref.x @ interaction_matrix(model, lateral_factor).detach()).split(model.sizes, 1)[1]
+        assert close(torch.sigmoid(logits), expected) is agrees
+
+    # negative control: the own-state independence checked for lateral-free layers fails here.
+    flipped = list(ref.states)
+    flipped[1] = 1.0 - flipped[1]
+    assert not torch.equal(model.conditional_logits(flipped, 1), model.conditional_logits(ref.states, 1))
