@@ -51,6 +51,7 @@ def exact_moments(
     weights = [w.detach().to(torch.float64) for w in model.weights()]
     device = biases[0].device
     cover_sizes = [model.sizes[i] for i in cover]
+    summed_out = [i for i in range(len(biases)) if i not in cover]
     bits, total = sum(cover_sizes), 2 ** sum(cover_sizes)
     rows = max(1, min(total, _CHUNK_ELEMENTS // sum(model.sizes)))
     shifts = torch.arange(bits, device=device)
@@ -63,7 +64,8 @@ def exact_moments(
         codes = torch.arange(start, min(start + rows, total), device=device)
         cover_bits = ((codes[:, None] >> shifts) & 1).to(torch.float64)
         given = dict(zip(cover, cover_bits.split(cover_sizes, dim=1)))
-        log_weights = -F.marginal_free_energy(given, biases, weights, model.edges)
+        summed_logits = {k: F.layer_logits(given, k, biases, weights, model.edges) for k in summed_out}
+        log_weights = -F.marginal_free_energy(given, biases, weights, model.edges, summed_logits)
         # Running log-sum-exp: accumulators hold sums scaled by exp(-log_scale).
         new_scale = torch.maximum(log_scale, log_weights.max())
         rescale = torch.exp(log_scale - new_scale)
@@ -71,12 +73,7 @@ def exact_moments(
         weight_sum = weight_sum * rescale + chunk_weights.sum()
         if statistics:
             # Summed-out layers enter through their exact conditional means given the cover.
-            full = [
-                given[i]
-                if i in given
-                else torch.sigmoid(F.layer_logits(given, i, biases, weights, model.edges))
-                for i in range(len(biases))
-            ]
+            full = [given[i] if i in given else torch.sigmoid(summed_logits[i]) for i in range(len(biases))]
             chunk = Statistics.from_states(full, model.edges, chunk_weights)
             means = [m * rescale + c for m, c in zip(means, chunk.means)]
             pairs = [p * rescale + c for p, c in zip(pairs, chunk.pairs)]

@@ -31,16 +31,17 @@ Edge = tuple[int, int]
 States = Sequence[Tensor] | Mapping[int, Tensor]
 
 
-def coupling_input(edge: Edge, weight: Tensor, target: int, states: States) -> Tensor:
-    """Input ``(B, n_target)`` that one coupling sends to layer ``target`` from the other end.
+def coupling_input(edge: Edge, weight: Tensor, target: int, states: States) -> tuple[Tensor, Tensor]:
+    """The factors ``(x, M)`` of the input ``x @ M`` ``(B, n_target)`` that one coupling sends to
+    layer ``target``: ``(x_a, W)`` into ``b``, ``(x_b, W^T)`` into ``a``.
 
-    For a lateral coupling (``a == b == target``) this is ``x_a @ W``; the zero diagonal
+    For a lateral coupling (``a == b == target``) the input is ``x_a @ W``; the zero diagonal
     keeps a unit's own state out of its input.
     """
     a, b = edge
     if target == b:
-        return states[a] @ weight
-    return states[b] @ weight.mT
+        return states[a], weight
+    return states[b], weight.mT
 
 
 def layer_logits(
@@ -50,18 +51,20 @@ def layer_logits(
     weights: Sequence[Tensor],
     edges: Sequence[Edge],
 ) -> Tensor:
-    """Total input ``b_t + sum_m W_tm x_m`` to layer ``target``, shape ``(B, n_target)``.
+    """Total input ``b_t + sum_m x_m W_mt`` to layer ``target``, shape ``(B, n_target)``.
 
     ``sigmoid`` of it is ``p(x_target = 1 | all other units)``, unit by unit; only the layers
     coupled to ``target`` need to be present in ``states``.
     """
-    logits = biases[target]
+    logits = None
     for edge, weight in zip(edges, weights):
         if target in edge:
-            logits = logits + coupling_input(edge, weight, target, states)
-    if logits.ndim == 1:  # no coupling touches the layer; batch of one when no state is given
+            x, matrix = coupling_input(edge, weight, target, states)
+            # addmm adds the bias (or the inputs so far) inside the matrix product.
+            logits = torch.addmm(biases[target] if logits is None else logits, x, matrix)
+    if logits is None:  # no coupling touches the layer; batch of one when no state is given
         first = next(iter(states.values() if isinstance(states, Mapping) else states), None)
-        logits = logits.expand(1 if first is None else first.shape[0], -1)
+        logits = biases[target].expand(1 if first is None else first.shape[0], -1)
     return logits
 
 
@@ -87,12 +90,14 @@ def marginal_free_energy(
     biases: Sequence[Tensor],
     weights: Sequence[Tensor],
     edges: Sequence[Edge],
+    summed_logits: Mapping[int, Tensor] | None = None,
 ) -> Tensor:
     """Free energy ``(B,)`` of the ``given`` layers' states with every other layer summed out.
 
     ``F = E(given alone) - sum_k sum_j softplus(logits_kj)`` over summed-out layers ``k``,
     exact only when no coupling joins two summed-out layers (a lateral coupling counts); the
-    caller checks that.
+    caller checks that. ``summed_logits`` passes the layers' ``layer_logits`` when already
+    computed.
     """
     total = -sum(x @ biases[i] for i, x in given.items())
     for edge, weight in zip(edges, weights):
@@ -100,7 +105,10 @@ def marginal_free_energy(
             total = total + _pair_energy(edge, weight, given)
     for k in range(len(biases)):
         if k not in given:
-            total = total - softplus(layer_logits(given, k, biases, weights, edges)).sum(-1)
+            logits = (
+                layer_logits(given, k, biases, weights, edges) if summed_logits is None else summed_logits[k]
+            )
+            total = total - softplus(logits).sum(-1)
     return total
 
 
