@@ -16,7 +16,26 @@ __all__ = ["DenseCoupling", "LateralCoupling"]
 INIT_STD = 0.01
 
 
-class DenseCoupling(nn.Module):
+class _Coupling(nn.Module):
+    """What every coupling shares: the indices ``a``, ``b`` of the layers it joins, and its input."""
+
+    a: int
+    b: int
+    weight: Tensor
+
+    def input_to(self, target: int, x: Tensor) -> Tensor:
+        """Input ``(B, n_target)`` sent to layer ``target`` from the state ``x`` ``(B, n_other)`` of
+        the other end: ``x_a @ W`` into ``b``, ``x_b @ W.T`` into ``a`` (lateral: ``x @ W``)."""
+        if target == self.b:
+            return x @ self.weight
+        if target == self.a:
+            return x @ self.weight.mT
+        raise ValueError(
+            f"target must be one of the layers this coupling joins ({self.a}, {self.b}), got {target}"
+        )
+
+
+class DenseCoupling(_Coupling):
     r"""Weights between layers ``a`` and ``b``, energy term :math:`-x_a W x_b^\top`.
 
     Args:
@@ -38,8 +57,6 @@ class DenseCoupling(nn.Module):
         torch.Size([6, 4])
     """
 
-    a: int
-    b: int
     weight: nn.Parameter
 
     def __init__(
@@ -81,7 +98,7 @@ class _SymmetricZeroDiagonal(nn.Module):
         return weight.triu(1)
 
 
-class LateralCoupling(nn.Module):
+class LateralCoupling(_Coupling):
     r"""Symmetric weights among the ``n`` units of one layer, energy term :math:`-\tfrac12 x W x^\top`.
 
     ``weight`` is a parametrized ``(n, n)`` matrix (``torch.nn.utils.parametrize``), symmetric
@@ -107,9 +124,6 @@ class LateralCoupling(nn.Module):
         >>> torch.equal(weight, weight.T), weight.diagonal().count_nonzero().item()
         (True, 0)
     """
-
-    a: int
-    b: int
 
     def __init__(self, layer: int, n: int, *, dtype: torch.dtype | None = None, device=None) -> None:
         super().__init__()

@@ -156,3 +156,33 @@ def test_exact_statistics_in_model_dtype(dtype):
     stats = el.ExactStatistics(el.rbm(5, 3, dtype=dtype)).statistics()
     assert [m.dtype for m in stats.means + stats.pairs] == [dtype] * 3
     assert [tuple(m.shape) for m in stats.means] == [(5,), (3,)] and stats.pairs[0].shape == (5, 3)
+
+
+def test_coupling_inputs_add_up_to_the_conditional_logits(lateral_model, generator):
+    states = [torch.bernoulli(torch.full((6, n), 0.5), generator=generator) for n in lateral_model.sizes]
+    for target in range(3):
+        total = lateral_model.layers[target].bias.expand(6, -1)
+        for coupling in lateral_model.couplings:
+            if target in (coupling.a, coupling.b):
+                other = coupling.b if target == coupling.a else coupling.a
+                total = total + coupling.input_to(target, states[other])
+        assert torch.allclose(lateral_model.conditional_logits(states, target), total, atol=1e-6)
+    dense = lateral_model.couplings[2]  # DenseCoupling(2, 0): weight (2, 5)
+    assert torch.equal(dense.input_to(0, states[2]), states[2] @ dense.weight)
+    assert torch.equal(dense.input_to(2, states[0]), states[0] @ dense.weight.T)
+    with pytest.raises(ValueError, match="target must be one of the layers"):
+        dense.input_to(1, states[1])
+
+
+def test_binary_layer_mean_and_sample():
+    layer = el.BinaryLayer(3)
+    logits = torch.tensor([-2.0, 0.0, 1.5]).expand(20_000, 3)
+    assert torch.allclose(layer.mean(logits), torch.sigmoid(logits))
+    draws = layer.sample(logits, torch.Generator().manual_seed(0))
+    assert draws.shape == logits.shape and draws.dtype == logits.dtype
+    assert set(draws.unique().tolist()) <= {0.0, 1.0}
+    # Frequencies within 5 binomial standard errors of sigmoid(logits) (common practice, no source).
+    p = torch.sigmoid(logits[0])
+    assert ((draws.mean(0) - p).abs() < 5 * (p * (1 - p) / 20_000).sqrt()).all()
+    assert torch.equal(draws, layer.sample(logits, torch.Generator().manual_seed(0)))
+    assert not torch.equal(draws, layer.sample(logits, torch.Generator().manual_seed(1)))
