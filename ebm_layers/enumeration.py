@@ -14,6 +14,7 @@ import torch
 from torch import Tensor, nn
 
 from . import functional as F
+from ._checks import check_size
 from .graph import smallest_cover
 from .model import EnergyModel
 from .statistics import Statistics
@@ -27,6 +28,7 @@ _CHUNK_ELEMENTS = 2**20
 
 def enumeration_cover(model: EnergyModel, max_states: int = MAX_STATES) -> tuple[int, ...]:
     """The layers an exact sum enumerates; ``ValueError`` when their states exceed ``max_states``."""
+    check_size("max_states", max_states)
     cover = smallest_cover(model.sizes, model.edges)
     bits = sum(model.sizes[i] for i in cover)
     if 2**bits > max_states:

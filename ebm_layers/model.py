@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Collection, Mapping, Sequence
 
 import torch
@@ -66,6 +67,7 @@ class EnergyModel(nn.Module):
 
     @property
     def dtype(self) -> torch.dtype:
+        """The dtype of every parameter (float32 unless converted, e.g. by ``.double()``)."""
         return self.layers[0].bias.dtype
 
     def biases(self) -> list[Tensor]:
@@ -106,7 +108,9 @@ class EnergyModel(nn.Module):
         Defined in closed form only when no two non-visible units are coupled (RBM-like
         models, with or without visible lateral couplings); otherwise a ``ValueError``.
         """
-        return self.marginal_free_energy({0: v})
+        self.check_summable([0])
+        check_batch("v", v, self.sizes[0], dtype=self.dtype)
+        return F.marginal_free_energy({0: v}, self.biases(), self.weights(), self.edges)
 
     def marginal_free_energy(self, states: Mapping[int, Tensor]) -> Tensor:
         """Free energy ``(B,)`` of some layers' states, every other layer summed out in closed form.
@@ -149,8 +153,8 @@ class EnergyModel(nn.Module):
         check_batch("data", data, self.sizes[0])
         if isinstance(pseudocount, bool) or not isinstance(pseudocount, int | float):
             raise TypeError(f"pseudocount must be a number, got {pseudocount!r}")
-        if not pseudocount > 0:
-            raise ValueError(f"pseudocount must be positive, got {pseudocount}")
+        if not 0 < pseudocount < math.inf:
+            raise ValueError(f"pseudocount must be positive and finite, got {pseudocount}")
         counts = data.detach().to(torch.float64).sum(0)
         rates = (counts + pseudocount) / (data.shape[0] + 2 * pseudocount)
         self.layers[0].bias.copy_(torch.logit(rates))

@@ -69,7 +69,30 @@ MODEL_CASES = [
         TypeError,
         "layer",
     ),
-    ("free_energy: wrong width", lambda m: m.free_energy(torch.ones(2, 4)), ValueError, "states[0]"),
+    (
+        "free_energy: wrong width",
+        lambda m: m.free_energy(torch.ones(2, 4)),
+        ValueError,
+        "v must have 6 columns",
+    ),
+    (
+        "marginal_free_energy: wrong width",
+        lambda m: m.marginal_free_energy({1: torch.ones(2, 3)}),
+        ValueError,
+        "states[1] must have 4 columns",
+    ),
+    (
+        "marginal_free_energy: unknown layer",
+        lambda m: m.marginal_free_energy({2: torch.ones(2, 3)}),
+        ValueError,
+        "layer must be a layer index in 0..1, got 2",
+    ),
+    (
+        "exact_log_partition: max_states not an int",
+        lambda m: el.exact_log_partition(m, max_states="many"),
+        TypeError,
+        "max_states",
+    ),
     (
         "marginal_free_energy: not a dict",
         lambda m: m.marginal_free_energy([GOOD]),
@@ -93,6 +116,12 @@ MODEL_CASES = [
         lambda m: m.init_visible_bias_from(torch.full((3, 6), float("nan"))),
         ValueError,
         "data",
+    ),
+    (
+        "init_visible_bias_from: pseudocount inf",
+        lambda m: m.init_visible_bias_from(GOOD, pseudocount=float("inf")),
+        ValueError,
+        "pseudocount",
     ),
     (
         "init_visible_bias_from: pseudocount 0",
