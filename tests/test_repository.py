@@ -59,3 +59,15 @@ def test_readme_python_example_runs():
     text = (ROOT / "README.md").read_text()
     (example,) = re.findall(r"^```python\n(.*?)^```", text, re.M | re.S)
     exec(compile(example, "README.md", "exec"), {})
+
+
+def test_benchmarks_run_at_tiny_size():
+    # A smoke test only: benchmarks print ratios and are never timed inside the suite.
+    result = subprocess.run(
+        [sys.executable, str(ROOT / "benchmarks" / "enumeration.py"), "--visible", "8", "--hidden", "5"],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+    assert result.returncode == 0, result.stderr
+    assert "plain one-shot torch / exact_log_partition" in result.stdout
