@@ -2,6 +2,7 @@
 
 import io
 
+import numpy as np
 import pytest
 import torch
 from scipy.special import logit
@@ -186,3 +187,22 @@ def test_binary_layer_mean_and_sample():
     assert ((draws.mean(0) - p).abs() < 5 * (p * (1 - p) / 20_000).sqrt()).all()
     assert torch.equal(draws, layer.sample(logits, torch.Generator().manual_seed(0)))
     assert not torch.equal(draws, layer.sample(logits, torch.Generator().manual_seed(1)))
+
+
+def test_statistics_from_states_are_batch_averages(generator):
+    # Reference: numpy.einsum over the batch (reference library), plain and weighted.
+    states = [
+        torch.rand(7, 3, generator=generator, dtype=torch.float64),
+        torch.rand(7, 2, dtype=torch.float64),
+    ]
+    edges = [(0, 1), (0, 0)]
+    x0, x1 = (s.numpy() for s in states)
+    stats = el.Statistics.from_states(states, edges)
+    np.testing.assert_allclose(stats.means[1].numpy(), x1.mean(0))
+    np.testing.assert_allclose(stats.pairs[0].numpy(), np.einsum("bi,bj->ij", x0, x1) / 7)
+    np.testing.assert_allclose(stats.pairs[1].numpy(), np.einsum("bi,bj->ij", x0, x0) / 7)
+    weights = torch.softmax(torch.randn(7, generator=generator, dtype=torch.float64), 0)
+    weighted = el.Statistics.from_states(states, edges, weights)
+    w = weights.numpy()
+    np.testing.assert_allclose(weighted.means[0].numpy(), w @ x0)
+    np.testing.assert_allclose(weighted.pairs[0].numpy(), np.einsum("b,bi,bj->ij", w, x0, x1))
