@@ -100,6 +100,15 @@ def draw_model(data: st.DataObject, shape: str) -> el.EnergyModel:
     return randomize(build(shape, tuple(sizes)), seed)
 
 
+def random_models(shapes):
+    """Run a test ``(shape, data)`` for every shape in ``shapes``, hypothesis drawing the models."""
+
+    def decorate(test):
+        return pytest.mark.parametrize("shape", shapes)(EXAMPLES(given(data=st.data())(test)))
+
+    return decorate
+
+
 def interaction_matrix(model: el.EnergyModel, lateral_factor: float = 1.0) -> Tensor:
     """The symmetric (N, N) float64 J of E(x) = -b.x - 1/2 x J x^T over the stacked units.
 
@@ -203,9 +212,7 @@ def close(actual: Tensor, expected: Tensor) -> bool:
     return torch.allclose(actual.detach(), expected.detach(), rtol=RTOL, atol=ATOL)
 
 
-@pytest.mark.parametrize("shape", SHAPES)
-@EXAMPLES
-@given(data=st.data())
+@random_models(SHAPES)
 def test_energy_matches_direct_formula(shape, data):
     model = draw_model(data, shape)
     ref = brute_force(model)
@@ -213,9 +220,7 @@ def test_energy_matches_direct_formula(shape, data):
     assert_close(model.energy(ref.states), ref.energy)
 
 
-@pytest.mark.parametrize("shape", SHAPES)
-@EXAMPLES
-@given(data=st.data())
+@random_models(SHAPES)
 def test_log_partition_matches_enumeration(shape, data):
     model = draw_model(data, shape)
     log_z = el.exact_log_partition(model)
@@ -224,9 +229,7 @@ def test_log_partition_matches_enumeration(shape, data):
     assert_close(log_z, brute_force(model).log_z)
 
 
-@pytest.mark.parametrize("shape", CLOSED_FORM)
-@EXAMPLES
-@given(data=st.data())
+@random_models(CLOSED_FORM)
 def test_log_likelihood_matches_marginal(shape, data):
     model = draw_model(data, shape)
     ref = brute_force(model)
@@ -253,18 +256,14 @@ def test_free_energy_refused_when_hidden_units_are_coupled(shape):
         el.exact_log_likelihood(model, v)
 
 
-@pytest.mark.parametrize("shape", SHAPES)
-@EXAMPLES
-@given(data=st.data())
+@random_models(SHAPES)
 def test_exact_statistics_match_enumeration(shape, data):
     model = draw_model(data, shape)
     # exact enumeration (mathematics): E[x_i] and E[x_a^T x_b] under p(x) = exp(-E(x)) / Z.
     assert_exact_statistics(el.ExactStatistics(model).statistics(), model, brute_force(model))
 
 
-@pytest.mark.parametrize("shape", SHAPES)
-@EXAMPLES
-@given(data=st.data())
+@random_models(SHAPES)
 def test_conditionals_match_joint_probability_ratio(shape, data):
     model = draw_model(data, shape)
     ref = brute_force(model)
@@ -280,9 +279,7 @@ def test_conditionals_match_joint_probability_ratio(shape, data):
             assert torch.equal(model.conditional_logits(flipped, i), logits)
 
 
-@pytest.mark.parametrize("shape", SHAPES)
-@EXAMPLES
-@given(data=st.data())
+@random_models(SHAPES)
 def test_log_partition_gradient_matches_autograd_of_enumeration(shape, data):
     model = draw_model(data, shape)
     params = free_parameters(model)
@@ -299,9 +296,7 @@ def test_log_partition_gradient_matches_autograd_of_enumeration(shape, data):
     assert_all_close(list(got), stats.means + pairs)
 
 
-@pytest.mark.parametrize("shape", SHAPES)
-@EXAMPLES
-@given(data=st.data())
+@random_models(SHAPES)
 def test_float32_model_enumerates_in_float64(shape, data):
     model = draw_model(data, shape)
     model32 = copy.deepcopy(model).to(torch.float32)
@@ -324,9 +319,7 @@ def exact_results(model: el.EnergyModel) -> list[Tensor]:
     return [el.exact_log_partition(model), *stats.means, *stats.pairs]
 
 
-@pytest.mark.parametrize("shape", SHAPES)
-@EXAMPLES
-@given(data=st.data())
+@random_models(SHAPES)
 def test_chunked_enumeration_changes_nothing(shape, data):
     model = draw_model(data, shape)
     whole = exact_results(model)
