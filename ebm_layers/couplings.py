@@ -6,6 +6,7 @@ import torch
 from torch import Tensor, nn
 from torch.nn.utils import parametrize
 
+from . import functional as F
 from ._checks import check_index, check_size
 from ._random import resolve_generator
 
@@ -26,13 +27,12 @@ class _Coupling(nn.Module):
     def input_to(self, target: int, x: Tensor) -> Tensor:
         """Input ``(B, n_target)`` sent to layer ``target`` from the state ``x`` ``(B, n_other)`` of
         the other end: ``x_a @ W`` into ``b``, ``x_b @ W.T`` into ``a`` (lateral: ``x @ W``)."""
-        if target == self.b:
-            return x @ self.weight
-        if target == self.a:
-            return x @ self.weight.mT
-        raise ValueError(
-            f"target must be one of the layers this coupling joins ({self.a}, {self.b}), got {target}"
-        )
+        if target not in (self.a, self.b):
+            raise ValueError(
+                f"target must be one of the layers this coupling joins ({self.a}, {self.b}), got {target}"
+            )
+        _, matrix = F.coupling_input((self.a, self.b), self.weight, target)
+        return x @ matrix
 
 
 class DenseCoupling(_Coupling):

@@ -31,17 +31,17 @@ Edge = tuple[int, int]
 States = Sequence[Tensor] | Mapping[int, Tensor]
 
 
-def coupling_input(edge: Edge, weight: Tensor, target: int, states: States) -> tuple[Tensor, Tensor]:
-    """The factors ``(x, M)`` of the input ``x @ M`` ``(B, n_target)`` that one coupling sends to
-    layer ``target``: ``(x_a, W)`` into ``b``, ``(x_b, W^T)`` into ``a``.
+def coupling_input(edge: Edge, weight: Tensor, target: int) -> tuple[int, Tensor]:
+    """The source layer ``s`` and matrix ``M`` of the input ``x_s @ M`` ``(B, n_target)`` that one
+    coupling sends to layer ``target``: ``(a, W)`` into ``b``, ``(b, W^T)`` into ``a``.
 
     For a lateral coupling (``a == b == target``) the input is ``x_a @ W``; the zero diagonal
     keeps a unit's own state out of its input.
     """
     a, b = edge
     if target == b:
-        return states[a], weight
-    return states[b], weight.mT
+        return a, weight
+    return b, weight.mT
 
 
 def layer_logits(
@@ -59,9 +59,9 @@ def layer_logits(
     logits = None
     for edge, weight in zip(edges, weights):
         if target in edge:
-            x, matrix = coupling_input(edge, weight, target, states)
+            source, matrix = coupling_input(edge, weight, target)
             # addmm adds the bias (or the inputs so far) inside the matrix product.
-            logits = torch.addmm(biases[target] if logits is None else logits, x, matrix)
+            logits = torch.addmm(biases[target] if logits is None else logits, states[source], matrix)
     if logits is None:  # no coupling touches the layer; batch of one when no state is given
         first = next(iter(states.values() if isinstance(states, Mapping) else states), None)
         logits = biases[target].expand(1 if first is None else first.shape[0], -1)

@@ -102,15 +102,14 @@ class EnergyModel(nn.Module):
         states = check_states("states", states, self.sizes, self.dtype)
         return F.layer_logits(states, layer, self.biases(), self.weights(), self.edges)
 
-    def free_energy(self, v: Tensor) -> Tensor:
+    def free_energy(self, v: Tensor, *, dtype: torch.dtype | None = None) -> Tensor:
         r"""Free energy ``(B,)`` of visible data, :math:`F(v) = -\log \sum_h e^{-E(v, h)}`.
 
         Defined in closed form only when no two non-visible units are coupled (RBM-like
         models, with or without visible lateral couplings); otherwise a ``ValueError``.
+        ``dtype`` computes in another precision (parameters and ``v`` cast, still differentiable).
         """
-        self.check_summable([0])
-        check_batch("v", v, self.sizes[0], dtype=self.dtype)
-        return F.marginal_free_energy({0: v}, self.biases(), self.weights(), self.edges)
+        return self._checked_free_energy({0: v}, {0: "v"}, dtype)
 
     def marginal_free_energy(self, states: Mapping[int, Tensor]) -> Tensor:
         """Free energy ``(B,)`` of some layers' states, every other layer summed out in closed form.
@@ -122,12 +121,22 @@ class EnergyModel(nn.Module):
             raise TypeError(
                 f"states must be a non-empty dict {{layer index: (B, n_i) tensor}}, got {states!r}"
             )
+        return self._checked_free_energy(states, {i: f"states[{i}]" for i in states}, None)
+
+    def _checked_free_energy(
+        self, states: Mapping[int, Tensor], names: Mapping[int, str], dtype: torch.dtype | None
+    ) -> Tensor:
+        """Validate ``states`` (reported under ``names``), then compute their free energy in ``dtype``."""
         self.check_summable(states.keys())
         batch = None
         for i, x in states.items():
-            check_batch(f"states[{i}]", x, self.sizes[i], dtype=self.dtype, batch=batch)
+            check_batch(names[i], x, self.sizes[i], dtype=self.dtype, batch=batch)
             batch = x.shape[0]
-        return F.marginal_free_energy(states, self.biases(), self.weights(), self.edges)
+        biases, weights = self.biases(), self.weights()
+        if dtype is not None:
+            biases, weights = [b.to(dtype) for b in biases], [w.to(dtype) for w in weights]
+            states = {i: x.to(dtype) for i, x in states.items()}
+        return F.marginal_free_energy(states, biases, weights, self.edges)
 
     def check_summable(self, kept: Collection[int]) -> None:
         """Raise ``ValueError`` unless every layer outside ``kept`` can be summed out in closed form."""

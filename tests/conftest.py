@@ -23,12 +23,16 @@ def generator() -> torch.Generator:
     return torch.Generator().manual_seed(1234)
 
 
-@pytest.fixture
-def lateral_model(generator) -> el.EnergyModel:
+def make_lateral_model() -> el.EnergyModel:
     """Visible layer with lateral couplings, two hidden layers attached to it (closed-form F(v))."""
-    model = el.EnergyModel(
+    return el.EnergyModel(
         layers=[el.BinaryLayer(5), el.BinaryLayer(3), el.BinaryLayer(2)],
         couplings=[el.DenseCoupling(0, 1, 5, 3), el.LateralCoupling(0, 5), el.DenseCoupling(2, 0, 2, 5)],
     )
+
+
+@pytest.fixture
+def lateral_model(generator) -> el.EnergyModel:
+    model = make_lateral_model()
     model.reset_parameters(generator)
     return model

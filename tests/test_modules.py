@@ -9,6 +9,7 @@ from scipy.special import logit
 
 import ebm_layers as el
 from ebm_layers.graph import colour_classes, smallest_cover
+from tests.conftest import make_lateral_model
 
 
 def test_builders_shapes_and_initialisation(generator):
@@ -64,10 +65,7 @@ def test_state_dict_round_trip(lateral_model, generator):
     buffer = io.BytesIO()
     torch.save(lateral_model.state_dict(), buffer)
     buffer.seek(0)
-    other = el.EnergyModel(
-        layers=[el.BinaryLayer(5), el.BinaryLayer(3), el.BinaryLayer(2)],
-        couplings=[el.DenseCoupling(0, 1, 5, 3), el.LateralCoupling(0, 5), el.DenseCoupling(2, 0, 2, 5)],
-    )
+    other = make_lateral_model()
     assert not torch.equal(other.energy(states), lateral_model.energy(states))
     other.load_state_dict(torch.load(buffer))
     assert torch.equal(other.energy(states), lateral_model.energy(states))
@@ -206,3 +204,16 @@ def test_statistics_from_states_are_batch_averages(generator):
     w = weights.numpy()
     np.testing.assert_allclose(weighted.means[0].numpy(), w @ x0)
     np.testing.assert_allclose(weighted.pairs[0].numpy(), np.einsum("b,bi,bj->ij", w, x0, x1))
+
+
+def test_free_energy_in_another_dtype_stays_differentiable(lateral_model, generator):
+    v = torch.bernoulli(torch.full((4, 5), 0.5), generator=generator)
+    free_energy = lateral_model.free_energy(v, dtype=torch.float64)
+    assert free_energy.dtype == torch.float64
+    # The same parameters in float64 (mathematics: only the cast separates the two).
+    expected = lateral_model.double().free_energy(v.double())
+    assert torch.allclose(free_energy, expected, atol=1e-12)
+    free_energy.sum().backward()
+    assert all(
+        p.grad is not None and p.grad.dtype == torch.float32 for p in lateral_model.float().parameters()
+    )
