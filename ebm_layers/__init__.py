@@ -8,6 +8,7 @@ from .layers import BinaryLayer
 from .metrics import exact_log_likelihood
 from .model import EnergyModel, dbm, rbm
 from .partition import exact_log_partition
+from .sampling import PersistentSampler
 from .statistics import Statistics
 
 __all__ = [
@@ -16,6 +17,7 @@ __all__ = [
     "EnergyModel",
     "ExactStatistics",
     "LateralCoupling",
+    "PersistentSampler",
     "Statistics",
     "UpdateSchedule",
     "dbm",

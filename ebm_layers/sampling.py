@@ -1,0 +1,209 @@
+"""PersistentSampler: fantasy particles that live in buffers and move by block Gibbs sweeps."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from functools import partial
+
+import torch
+from torch import Tensor, nn
+from tqdm.auto import tqdm
+
+from . import functional as F
+from ._checks import check_batch, check_size
+from ._random import resolve_generator
+from .model import EnergyModel
+from .statistics import Statistics
+
+__all__ = ["PersistentSampler"]
+
+
+class PersistentSampler(nn.Module):
+    """Persistent Markov chains (fantasy particles) under the model, advanced by block Gibbs sweeps.
+
+    One sweep visits the colour classes of ``model.schedule`` in turn; the layers of a class
+    are mutually uncoupled and are drawn at once from the current states of the others. A layer
+    with a lateral coupling is drawn one unit at a time. Each step leaves the model's Boltzmann
+    distribution invariant, so the chains sample it exactly in the long run. Between calls the
+    chains persist, as in persistent contrastive divergence ("Training Restricted Boltzmann
+    Machines using Approximations to the Likelihood Gradient", ICML 2008).
+
+    Args:
+        model: the :class:`EnergyModel` to sample; registered as a submodule, so ``.to()`` and
+            ``state_dict()`` cover it together with the particles.
+        num_particles: number of chains ``P``.
+        sweeps: sweeps per call of ``sampler()`` / ``statistics()``.
+        generator: the ``torch.Generator`` of every draw (``None``: a private one seeded from
+            the global RNG). Its state is saved in ``state_dict()`` and restored on load.
+        init: ``"uniform"`` (every unit 1 with probability 1/2), or a ``(P, n_0)`` tensor of
+            visible probabilities in [0, 1] (binary data starts the chains exactly there; the
+            other layers start uniform).
+        probabilities: ``statistics()`` uses, for the last class of the last sweep, the
+            conditional probabilities instead of the binary states (Rao-Blackwellised: the same
+            expectation, lower variance). Layers with lateral couplings keep binary states.
+
+    Shape:
+        - ``sampler()``, ``particles``: a list with one ``(P, n_i)`` tensor per layer, detached.
+        - ``sample(num_samples)``: one ``(num_samples, n_i)`` tensor per layer.
+
+    Attributes:
+        particles_<i>: buffer ``(P, n_i)`` of layer ``i``'s current states (binary).
+        generator_state: ``uint8`` buffer, the generator's state when ``state_dict()`` was taken.
+
+    Examples::
+
+        >>> import ebm_layers as el
+        >>> g = torch.Generator().manual_seed(0)
+        >>> sampler = el.PersistentSampler(el.rbm(6, 3, generator=g), num_particles=10, generator=g)
+        >>> [x.shape for x in sampler()]
+        [torch.Size([10, 6]), torch.Size([10, 3])]
+    """
+
+    generator_state: Tensor
+
+    def __init__(
+        self,
+        model: EnergyModel,
+        num_particles: int = 100,
+        sweeps: int = 1,
+        generator: torch.Generator | None = None,
+        init: str | Tensor = "uniform",
+        probabilities: bool = False,
+    ) -> None:
+        super().__init__()
+        if not isinstance(model, EnergyModel):
+            raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
+        self.num_particles = check_size("num_particles", num_particles)
+        self.sweeps = check_size("sweeps", sweeps)
+        if isinstance(init, str):
+            if init != "uniform":
+                raise ValueError(f"init must be 'uniform' or a (num_particles, n_0) tensor, got {init!r}")
+        else:
+            init = check_batch("init", init, model.sizes[0], batch=self.num_particles).detach().clone()
+        if not isinstance(probabilities, bool):
+            raise TypeError(f"probabilities must be a bool, got {probabilities!r}")
+        self.model = model
+        self.generator = resolve_generator(generator)
+        self.init = init
+        self.probabilities = probabilities
+        self.register_buffer("generator_state", self.generator.get_state())
+        for i, n in enumerate(model.sizes):
+            self.register_buffer(f"particles_{i}", torch.empty(self.num_particles, n, dtype=model.dtype))
+        self.reset()
+        self.register_state_dict_pre_hook(_record_generator_state)
+        self.register_load_state_dict_post_hook(_restore_generator_state)
+
+    @property
+    def particles(self) -> list[Tensor]:
+        """The current states, one ``(P, n_i)`` tensor per layer (not advanced)."""
+        return [getattr(self, f"particles_{i}") for i in range(len(self.model.layers))]
+
+    def _set_particles(self, states: Sequence[Tensor]) -> None:
+        for i, x in enumerate(states):
+            setattr(self, f"particles_{i}", x)
+
+    @torch.no_grad()
+    def reset(self) -> None:
+        """Draw fresh particles from ``init`` with the sampler's generator."""
+        dtype = self.model.dtype
+        states = [
+            torch.bernoulli(torch.full_like(x, 0.5, dtype=dtype), generator=self.generator)
+            for x in self.particles
+        ]
+        if isinstance(self.init, Tensor):
+            states[0] = torch.bernoulli(self.init.to(dtype), generator=self.generator)
+        self._set_particles(states)
+
+    @torch.no_grad()
+    def _sweep(self, states: list[Tensor], keep_probabilities: bool = False) -> dict[int, Tensor]:
+        """Advance ``states`` (one per layer, replaced in the list) by one block Gibbs sweep.
+
+        Returns the conditional probabilities of the last class's layers without lateral
+        couplings when ``keep_probabilities``, else an empty dict.
+        """
+        model = self.model
+        biases, weights, edges = model.biases(), model.weights(), model.edges
+        classes, unitwise = model.schedule.classes, model.schedule.unitwise
+        draw = partial(F.bernoulli, generator=self.generator)
+        probabilities: dict[int, Tensor] = {}
+        for c, layers in enumerate(classes):
+            last = keep_probabilities and c == len(classes) - 1
+            # Every layer of the class is drawn from the states before the class update.
+            new = {}
+            for layer in layers:
+                if last and layer not in unitwise:
+                    logits = F.layer_logits(states, layer, biases, weights, edges)
+                    probabilities[layer] = torch.sigmoid(logits)
+                    new[layer] = draw(logits)
+                else:
+                    new[layer] = F.update_layer(states, layer, biases, weights, edges, draw)
+            for layer, x in new.items():
+                states[layer] = x
+        return probabilities
+
+    @torch.no_grad()
+    def _advance(self, sweeps: int, keep_probabilities: bool = False) -> dict[int, Tensor]:
+        states = self.particles
+        probabilities: dict[int, Tensor] = {}
+        for s in range(sweeps):
+            probabilities = self._sweep(states, keep_probabilities and s == sweeps - 1)
+        self._set_particles(states)
+        return probabilities
+
+    def forward(self) -> list[Tensor]:
+        """Advance every chain by ``sweeps`` sweeps; return the states, one ``(P, n_i)`` per layer."""
+        self._advance(self.sweeps)
+        return self.particles
+
+    @torch.no_grad()
+    def statistics(self) -> Statistics:
+        """Advance by ``sweeps`` sweeps and return the particles' :class:`Statistics` (detached)."""
+        probabilities = self._advance(self.sweeps, self.probabilities)
+        states = [probabilities.get(i, x) for i, x in enumerate(self.particles)]
+        return Statistics.from_states(states, self.model.edges)
+
+    @torch.no_grad()
+    def sample(
+        self, num_samples: int, *, burn_in: int = 1000, thin: int = 10, progress: bool = True
+    ) -> list[Tensor]:
+        """Draw ``num_samples`` joint states from the model with the persistent chains.
+
+        Runs ``burn_in`` sweeps, then records all ``P`` particles every ``thin`` sweeps until
+        ``num_samples`` states are collected (the chains are advanced and stay advanced).
+        Samples from one chain are correlated; raise ``thin`` to make them less so.
+
+        Returns:
+            one ``(num_samples, n_i)`` tensor per layer, binary, detached.
+        """
+        num_samples = check_size("num_samples", num_samples)
+        if isinstance(burn_in, bool) or not isinstance(burn_in, int) or burn_in < 0:
+            raise ValueError(f"burn_in must be a whole number >= 0, got {burn_in!r}")
+        thin = check_size("thin", thin)
+        rounds = math.ceil(num_samples / self.num_particles)
+        recorded: list[list[Tensor]] = []
+        with tqdm(total=burn_in + rounds * thin, desc="sampling", unit="sweep", disable=not progress) as bar:
+            self._advance(burn_in)
+            bar.update(burn_in)
+            for _ in range(rounds):
+                self._advance(thin)
+                bar.update(thin)
+                recorded.append(self.particles)
+        return [torch.cat(layer)[:num_samples] for layer in zip(*recorded)]
+
+    def extra_repr(self) -> str:
+        init = "uniform" if isinstance(self.init, str) else f"tensor{tuple(self.init.shape)}"
+        return (
+            f"num_particles={self.num_particles}, sweeps={self.sweeps}, init={init}, "
+            f"probabilities={self.probabilities}"
+        )
+
+
+def _record_generator_state(module: PersistentSampler, prefix: str, keep_vars: bool) -> None:
+    """Before ``state_dict()``: copy the generator's current state into its buffer."""
+    module.generator_state = module.generator.get_state()
+
+
+def _restore_generator_state(module: PersistentSampler, incompatible_keys) -> None:
+    """After ``load_state_dict()``: continue the generator from the loaded state."""
+    module.generator.set_state(module.generator_state)
