@@ -4,6 +4,7 @@ of binary units) as composable ``torch.nn`` modules, on CPU."""
 from .couplings import DenseCoupling, LateralCoupling
 from .enumeration import ExactStatistics
 from .graph import UpdateSchedule
+from .inference import MeanField
 from .layers import BinaryLayer
 from .metrics import exact_log_likelihood
 from .model import EnergyModel, dbm, rbm
@@ -17,6 +18,7 @@ __all__ = [
     "EnergyModel",
     "ExactStatistics",
     "LateralCoupling",
+    "MeanField",
     "PersistentSampler",
     "Statistics",
     "UpdateSchedule",
