@@ -146,7 +146,7 @@ class MeanField(nn.Module):
                     "mean field did not converge, so the implicit backward does not apply; "
                     "recomputing with the iterations unrolled",
                     RuntimeWarning,
-                    stacklevel=2,
+                    stacklevel=4,
                 )
                 marginals = self._solve(clamped, free, biases, weights)
         return [marginals[i] for i in range(len(self.model.layers))]
@@ -191,7 +191,7 @@ class MeanField(nn.Module):
                 f"{self.residual:.3g} > tol={self.tol:g} (warned once per module); raise max_iter, "
                 "or use damping / update='colour'",
                 RuntimeWarning,
-                stacklevel=4,
+                stacklevel=5,
             )
         return marginals
 
@@ -280,6 +280,8 @@ class MeanField(nn.Module):
 
     def _adjoint(self, step: Callable[[Tensor], Tensor], star: Tensor, grad: Tensor) -> Tensor:
         """Solve ``u = grad + J^T u`` by iteration, ``J`` the Jacobian of ``step`` at ``star``."""
+        if grad is None:  # an undefined gradient stays undefined
+            return grad
         point = star.clone().requires_grad_()
         with torch.enable_grad():
             image = step(point)

@@ -5,6 +5,8 @@ import subprocess
 import sys
 from pathlib import Path
 
+import pytest
+
 ROOT = Path(__file__).resolve().parents[1]
 TORCH_PIN = "torch==2.13.0"
 
@@ -55,19 +57,29 @@ def test_quickstart_runs_and_prints_exact_log_partition():
     assert "E(v, h)" in result.stdout
 
 
-def test_readme_python_example_runs():
+def test_readme_python_examples_run():
     text = (ROOT / "README.md").read_text()
-    (example,) = re.findall(r"^```python\n(.*?)^```", text, re.M | re.S)
-    exec(compile(example, "README.md", "exec"), {})
+    examples = re.findall(r"^```python\n(.*?)^```", text, re.M | re.S)
+    assert len(examples) >= 2
+    namespace: dict = {}  # later blocks continue from earlier ones
+    for example in examples:
+        exec(compile(example, "README.md", "exec"), namespace)
 
 
-def test_benchmarks_run_at_tiny_size():
+@pytest.mark.parametrize(
+    "script, arguments, expected",
+    [
+        ("enumeration.py", ["--visible", "8", "--hidden", "5"], "plain one-shot torch / exact_log_partition"),
+        ("meanfield.py", ["--sizes", "12", "8", "6", "--batch", "4"], "GEMM/iteration"),
+    ],
+)
+def test_benchmarks_run_at_tiny_size(script, arguments, expected):
     # A smoke test only: benchmarks print ratios and are never timed inside the suite.
     result = subprocess.run(
-        [sys.executable, str(ROOT / "benchmarks" / "enumeration.py"), "--visible", "8", "--hidden", "5"],
+        [sys.executable, str(ROOT / "benchmarks" / script), *arguments],
         capture_output=True,
         text=True,
         timeout=120,
     )
     assert result.returncode == 0, result.stderr
-    assert "plain one-shot torch / exact_log_partition" in result.stdout
+    assert expected in result.stdout
