@@ -144,7 +144,8 @@ class PersistentSampler(nn.Module):
 
     @torch.no_grad()
     def _advance(self, sweeps: int, keep_probabilities: bool = False) -> dict[int, Tensor]:
-        states = self.particles
+        # The model may have been converted on its own (e.g. model.double()): follow its dtype.
+        states = [x.to(self.model.dtype) for x in self.particles]
         probabilities: dict[int, Tensor] = {}
         for s in range(sweeps):
             probabilities = self._sweep(states, keep_probabilities and s == sweeps - 1)
