@@ -76,6 +76,7 @@ def update_layer(
     weights: Sequence[Tensor],
     edges: Sequence[Edge],
     transform: Callable[[Tensor], Tensor],
+    observed: tuple[Tensor, Tensor] | None = None,
 ) -> Tensor:
     """New state ``(B, n_target)`` of layer ``target``: ``transform`` of each unit's total input.
 
@@ -87,17 +88,24 @@ def update_layer(
     about one ``(B, n) @ (n, n)`` product and never modifies a tensor in place (autograd can
     differentiate it). Only the layers coupled to ``target`` (and ``target`` itself when it has
     a lateral coupling) need to be in ``states``.
+
+    ``observed = (mask, values)``, both ``(B, n_target)``: units where ``mask`` is True keep
+    ``values`` instead of being updated (clamped units of a partly observed layer).
     """
+
+    def keep_observed(new: Tensor, columns: slice | int = slice(None)) -> Tensor:
+        return new if observed is None else torch.where(observed[0][:, columns], observed[1][:, columns], new)
+
     lateral = next((w for edge, w in zip(edges, weights) if edge == (target, target)), None)
     if lateral is None:
-        return transform(layer_logits(states, target, biases, weights, edges))
+        return keep_observed(transform(layer_logits(states, target, biases, weights, edges)))
     others = [(edge, w) for edge, w in zip(edges, weights) if edge != (target, target)]
     logits = layer_logits(states, target, biases, [w for _, w in others], [edge for edge, _ in others])
     current = states[target]
     lateral_input = current @ lateral
     columns = []
     for j in range(current.shape[1]):
-        new = transform(logits[:, j] + lateral_input[:, j])
+        new = keep_observed(transform(logits[:, j] + lateral_input[:, j]), j)
         lateral_input = lateral_input + (new - current[:, j])[:, None] * lateral[j]
         columns.append(new)
     return torch.stack(columns, dim=1)

@@ -6,12 +6,14 @@ import math
 import numbers
 import warnings
 from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
 
 import torch
 from torch import Tensor, nn
 
 from . import functional as F
 from ._checks import check_batch, check_index, check_size
+from .graph import UpdateSchedule
 from .model import EnergyModel
 from .statistics import Statistics
 
@@ -67,6 +69,9 @@ class MeanField(nn.Module):
         - ``mf(v, clamp)``: ``v`` ``(B, n_0)``; ``clamp`` maps further layer indices to
           ``(B, n_i)``. Returns one ``(B, n_i)`` tensor per layer: the clamped values themselves
           and the marginals of the free layers.
+        - ``missing``: optional bool ``(B, n_0)``, True where ``v`` is unknown. Those units are
+          inferred like free ones (``v`` may hold anything there, NaN included) and layer 0 comes
+          back filled in: observed values, and marginals where missing.
 
     Attributes:
         iterations: updates used by the last call.
@@ -123,24 +128,21 @@ class MeanField(nn.Module):
         self.iterations, self.converged, self.residual = 0, True, 0.0
         self._warned = False
 
-    def forward(self, v: Tensor, clamp: Mapping[int, Tensor] | None = None) -> list[Tensor]:
+    def forward(
+        self, v: Tensor, clamp: Mapping[int, Tensor] | None = None, missing: Tensor | None = None
+    ) -> list[Tensor]:
         """Marginals of every layer given ``v`` (layer 0) and ``clamp``; see the class docstring."""
-        clamped = self._check_clamp(v, clamp)
-        free = [i for i in range(len(self.model.layers)) if i not in clamped]
-        if not free:
+        problem = self._problem(v, clamp, missing)
+        if not problem.free:
             self.iterations, self.converged, self.residual = 0, True, 0.0
-            return [clamped[i] for i in range(len(self.model.layers))]
-        requires_grad = any(p.requires_grad for p in self.model.parameters()) or any(
-            x.requires_grad for x in clamped.values()
-        )
-        graph = torch.is_grad_enabled() and requires_grad
+            return [problem.clamped[i] for i in range(len(self.model.layers))]
+        graph = torch.is_grad_enabled() and problem.requires_grad()
         implicit = graph and self.backward == "implicit"
-        biases, weights = self.model.biases(), self.model.weights()
         with torch.set_grad_enabled(graph and not implicit):
-            marginals = self._solve(clamped, free, biases, weights)
+            marginals = self._solve(problem)
         if implicit:
             if self.converged:
-                marginals = self._attach_implicit(marginals, clamped, free, biases, weights)
+                marginals = self._attach_implicit(marginals, problem)
             else:
                 warnings.warn(
                     "mean field did not converge, so the implicit backward does not apply; "
@@ -148,41 +150,39 @@ class MeanField(nn.Module):
                     RuntimeWarning,
                     stacklevel=4,
                 )
-                marginals = self._solve(clamped, free, biases, weights)
+                marginals = self._solve(problem)
         return [marginals[i] for i in range(len(self.model.layers))]
 
     @torch.no_grad()
-    def statistics(self, v: Tensor, clamp: Mapping[int, Tensor] | None = None) -> Statistics:
+    def statistics(
+        self, v: Tensor, clamp: Mapping[int, Tensor] | None = None, missing: Tensor | None = None
+    ) -> Statistics:
         """:class:`Statistics` of the marginals (pairs ``mu_a^T mu_b / B``), detached."""
-        return Statistics.from_states(self(v, clamp), self.model.edges)
+        return Statistics.from_states(self(v, clamp, missing), self.model.edges)
 
     # -- the forward iteration -------------------------------------------------------------
 
-    def _free_classes(self, free: Sequence[int]) -> list[tuple[int, ...]]:
-        """Colour classes restricted to the free layers, empty ones dropped."""
-        classes = [tuple(i for i in c if i in free) for c in self.model.schedule.classes]
-        return [c for c in classes if c]
-
-    def _initial(self, clamped: Marginals, free: Sequence[int], biases, weights) -> Marginals:
-        marginals = dict(clamped)
-        batch = next(iter(clamped.values())).shape[0]
-        for i in free:
+    def _initial(self, problem: _Problem) -> Marginals:
+        marginals = dict(problem.clamped)
+        biases, weights = problem.biases, problem.weights
+        for i in problem.free:
             if self.init == "bottom-up":
                 below = [(e, w) for e, w in zip(self.model.edges, weights) if i in e and min(e) < i]
                 logits = F.layer_logits(marginals, i, biases, [w for _, w in below], [e for e, _ in below])
-                marginals[i] = torch.sigmoid(logits).expand(batch, -1)
+                start = torch.sigmoid(logits).expand(problem.batch, -1)
             else:
-                marginals[i] = biases[i].new_full((batch, self.model.sizes[i]), self.init)
+                start = biases[i].new_full((problem.batch, self.model.sizes[i]), self.init)
+            marginals[i] = problem.keep_observed(i, start)
         return marginals
 
-    def _solve(self, clamped: Marginals, free: Sequence[int], biases, weights) -> Marginals:
+    def _solve(self, problem: _Problem) -> Marginals:
         """Iterate from the initial marginals until the residual is below ``tol`` or ``max_iter``.
 
         Sets ``iterations``, ``converged`` and ``residual``; warns once when not converged.
         """
-        marginals = self._initial(clamped, free, biases, weights)
+        marginals = self._initial(problem)
         iterate = self._iterate_parallel if self.update == "parallel" else self._iterate_colour
-        self.iterations, self.residual = iterate(marginals, free, biases, weights)
+        self.iterations, self.residual = iterate(marginals, problem)
         self.converged = self.residual < self.tol
         if not self.converged and not self._warned:
             self._warned = True
@@ -195,21 +195,32 @@ class MeanField(nn.Module):
             )
         return marginals
 
-    def _iterate_parallel(self, marginals: Marginals, free, biases, weights) -> tuple[int, float]:
+    def _targets(self, marginals: Marginals, layers: Sequence[int], problem: _Problem) -> Marginals:
+        """``sigmoid(input(mu))`` of ``layers``, all units at once (observed units keep their values)."""
+        biases, weights, edges = problem.biases, problem.weights, self.model.edges
+        return {
+            i: problem.keep_observed(i, torch.sigmoid(F.layer_logits(marginals, i, biases, weights, edges)))
+            for i in layers
+        }
+
+    def _damped(self, marginals: Marginals, targets: Marginals) -> Marginals:
+        lam = self.damping
+        return {i: lam * marginals[i] + (1 - lam) * target for i, target in targets.items()}
+
+    def _iterate_parallel(self, marginals: Marginals, problem: _Problem) -> tuple[int, float]:
         """Damped parallel updates of ``marginals`` (replaced in the dict); returns (updates, residual)."""
-        edges, lam = self.model.edges, self.damping
         updates = 0
         while True:
-            target = {i: torch.sigmoid(F.layer_logits(marginals, i, biases, weights, edges)) for i in free}
-            residual = _max_change(target, marginals)
+            targets = self._targets(marginals, problem.free, problem)
+            residual = _max_change(targets, marginals)
             if residual < self.tol or updates == self.max_iter:
                 return updates, residual
-            marginals.update({i: lam * marginals[i] + (1 - lam) * target[i] for i in free})
+            marginals.update(self._damped(marginals, targets))
             updates += 1
 
-    def _iterate_colour(self, marginals: Marginals, free, biases, weights) -> tuple[int, float]:
+    def _iterate_colour(self, marginals: Marginals, problem: _Problem) -> tuple[int, float]:
         """Colour-ordered sweeps of ``marginals`` (replaced in the dict); returns (sweeps, residual)."""
-        classes = self._free_classes(free)
+        classes = problem.classes(self.model.schedule)
         unitwise = self.model.schedule.unitwise
         # After a sweep the last class is exactly at its update's value, so its residual is zero,
         # unless it was updated unit by unit. The first class's targets are its next update, so
@@ -220,61 +231,53 @@ class MeanField(nn.Module):
         sweeps = 0
         while True:
             for layers in classes:
-                new = pending or self._class_update(marginals, layers, biases, weights)
+                new = pending or self._class_update(marginals, layers, problem)
                 pending = {}
                 marginals.update(new)
             sweeps += 1
-            targets = {
-                i: torch.sigmoid(F.layer_logits(marginals, i, biases, weights, self.model.edges))
-                for layers in checked
-                for i in layers
-            }
+            targets = self._targets(marginals, [i for layers in checked for i in layers], problem)
             residual = _max_change(targets, marginals)
             if residual < self.tol or sweeps == self.max_iter:
                 return sweeps, residual
             pending = {i: targets[i] for i in classes[0]} if reuse else {}
 
-    def _class_update(self, marginals: Marginals, layers, biases, weights) -> Marginals:
+    def _class_update(self, marginals: Marginals, layers: Sequence[int], problem: _Problem) -> Marginals:
         """New marginals of one colour class, all computed from the current ``marginals``."""
-        edges = self.model.edges
-        return {i: F.update_layer(marginals, i, biases, weights, edges, torch.sigmoid) for i in layers}
+        biases, weights, edges = problem.biases, problem.weights, self.model.edges
+        return {
+            i: F.update_layer(marginals, i, biases, weights, edges, torch.sigmoid, problem.observed_units(i))
+            for i in layers
+        }
 
-    def _step(self, marginals: Marginals, free: Sequence[int], biases, weights) -> Marginals:
+    def _step(self, marginals: Marginals, problem: _Problem) -> Marginals:
         """One update of the iteration (a colour sweep, or a damped parallel step), out of place."""
         marginals = dict(marginals)
         if self.update == "parallel":
-            edges, lam = self.model.edges, self.damping
-            target = {i: torch.sigmoid(F.layer_logits(marginals, i, biases, weights, edges)) for i in free}
-            marginals.update({i: lam * marginals[i] + (1 - lam) * target[i] for i in free})
+            marginals.update(self._damped(marginals, self._targets(marginals, problem.free, problem)))
         else:
-            for layers in self._free_classes(free):
-                marginals.update(self._class_update(marginals, layers, biases, weights))
+            for layers in problem.classes(self.model.schedule):
+                marginals.update(self._class_update(marginals, layers, problem))
         return marginals
 
     # -- the implicit backward -------------------------------------------------------------
 
-    def _attach_implicit(
-        self, fixed_point: Marginals, clamped: Marginals, free: Sequence[int], biases, weights
-    ) -> Marginals:
+    def _attach_implicit(self, fixed_point: Marginals, problem: _Problem) -> Marginals:
         """Record one update at the fixed point; its backward solves the adjoint equation."""
+        free = problem.free
         sizes = [self.model.sizes[i] for i in free]
         star = torch.cat([fixed_point[i].detach() for i in free], dim=1)
 
-        def step(flat: Tensor, clamped: Marginals, biases, weights) -> Tensor:
-            marginals = dict(clamped)
+        def step(flat: Tensor, problem: _Problem) -> Tensor:
+            marginals = dict(problem.clamped)
             marginals.update(zip(free, flat.split(sizes, dim=1)))
-            out = self._step(marginals, free, biases, weights)
+            out = self._step(marginals, problem)
             return torch.cat([out[i] for i in free], dim=1)
 
-        out = step(star, clamped, biases, weights)
+        out = step(star, problem)
         if out.requires_grad:
-            constants = (
-                {i: x.detach() for i, x in clamped.items()},
-                [b.detach() for b in biases],
-                [w.detach() for w in weights],
-            )
-            out.register_hook(lambda grad: self._adjoint(lambda z: step(z, *constants), star, grad))
-        marginals = dict(clamped)
+            constants = problem.detached()
+            out.register_hook(lambda grad: self._adjoint(lambda z: step(z, constants), star, grad))
+        marginals = dict(problem.clamped)
         marginals.update(zip(free, out.split(sizes, dim=1)))
         return marginals
 
@@ -307,27 +310,87 @@ class MeanField(nn.Module):
 
     # -- input checks ----------------------------------------------------------------------
 
-    def _check_clamp(self, v: Tensor, clamp: Mapping[int, Tensor] | None) -> Marginals:
+    def _problem(self, v: Tensor, clamp: Mapping[int, Tensor] | None, missing: Tensor | None) -> _Problem:
+        """Validate the inputs of a call and gather what the iteration needs."""
         model = self.model
-        clamped = {0: check_batch("v", v, model.sizes[0], dtype=model.dtype)}
-        if clamp is None:
-            return clamped
-        if not isinstance(clamp, Mapping):
-            raise TypeError(
-                f"clamp must be a dict {{layer index: (B, n_i) tensor}}, got {type(clamp).__name__}"
-            )
-        for i, x in clamp.items():
-            i = check_index("clamp layer", i, len(model.layers))
-            if i == 0:
-                raise ValueError("clamp must not contain layer 0: it is clamped to v")
-            clamped[i] = check_batch(f"clamp[{i}]", x, model.sizes[i], dtype=model.dtype, batch=v.shape[0])
-        return clamped
+        observed = None
+        if missing is not None:
+            if not isinstance(missing, Tensor) or missing.dtype != torch.bool:
+                raise TypeError(f"missing must be a bool tensor (True where v is unknown), got {missing!r}")
+            if not isinstance(v, Tensor) or missing.shape != v.shape:
+                shape = tuple(v.shape) if isinstance(v, Tensor) else type(v).__name__
+                raise ValueError(f"missing must have the shape of v, {shape}, got {tuple(missing.shape)}")
+            v = torch.where(missing, 0.0, v)  # unknown values may be anything, NaN included
+        v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
+        clamped = {0: v}
+        if missing is not None and bool(missing.any()):
+            observed = (~missing, v)
+            del clamped[0]
+        if clamp is not None:
+            if not isinstance(clamp, Mapping):
+                raise TypeError(
+                    f"clamp must be a dict {{layer index: (B, n_i) tensor}}, got {type(clamp).__name__}"
+                )
+            for i, x in clamp.items():
+                i = check_index("clamp layer", i, len(model.layers))
+                if i == 0:
+                    raise ValueError("clamp must not contain layer 0: it is clamped to v")
+                clamped[i] = check_batch(
+                    f"clamp[{i}]", x, model.sizes[i], dtype=model.dtype, batch=v.shape[0]
+                )
+        free = [i for i in range(len(model.layers)) if i not in clamped]
+        return _Problem(clamped, free, v.shape[0], model.biases(), model.weights(), observed)
 
     def extra_repr(self) -> str:
         damping = f", damping={self.damping}" if self.update == "parallel" else ""
         return (
             f"update={self.update!r}{damping}, tol={self.tol:g}, max_iter={self.max_iter}, "
             f"backward={self.backward!r}, init={self.init!r}"
+        )
+
+
+@dataclass
+class _Problem:
+    """One call's inputs: clamped layers, free layers, parameters, and partly observed layer 0."""
+
+    clamped: Marginals
+    free: list[int]
+    batch: int
+    biases: list[Tensor]
+    weights: list[Tensor]
+    observed: tuple[Tensor, Tensor] | None = None  # (mask, values) of layer 0 when values are missing
+
+    def requires_grad(self) -> bool:
+        tensors = [*self.biases, *self.weights, *self.clamped.values()]
+        if self.observed is not None:
+            tensors.append(self.observed[1])
+        return any(x.requires_grad for x in tensors)
+
+    def classes(self, schedule: UpdateSchedule) -> list[tuple[int, ...]]:
+        """The schedule's colour classes restricted to the free layers, empty ones dropped."""
+        classes = [tuple(i for i in c if i in self.free) for c in schedule.classes]
+        return [c for c in classes if c]
+
+    def observed_units(self, layer: int) -> tuple[Tensor, Tensor] | None:
+        return self.observed if layer == 0 else None
+
+    def keep_observed(self, layer: int, new: Tensor) -> Tensor:
+        """``new`` marginals of ``layer`` with its observed units put back."""
+        if layer != 0 or self.observed is None:
+            return new
+        mask, values = self.observed
+        return torch.where(mask, values, new)
+
+    def detached(self) -> _Problem:
+        """The same problem with every tensor detached (for the adjoint iteration's graph)."""
+        observed = None if self.observed is None else (self.observed[0], self.observed[1].detach())
+        return _Problem(
+            {i: x.detach() for i, x in self.clamped.items()},
+            self.free,
+            self.batch,
+            [b.detach() for b in self.biases],
+            [w.detach() for w in self.weights],
+            observed,
         )
 
 

@@ -435,6 +435,19 @@ CALL_CASES = [
     ("clamp NaN", lambda mf: mf(GOOD, {2: torch.full((2, 3), float("nan"))}), ValueError, r"clamp\[2\]"),
     ("clamp not a dict", lambda mf: mf(GOOD, [torch.ones(2, 3)]), TypeError, "clamp"),
     ("statistics: v wrong width", lambda mf: mf.statistics(torch.ones(2, 7)), ValueError, "v must"),
+    ("missing not bool", lambda mf: mf(GOOD, missing=torch.zeros(2, 6)), TypeError, "missing must be a bool"),
+    (
+        "missing wrong shape",
+        lambda mf: mf(GOOD, missing=torch.zeros(2, 5).bool()),
+        ValueError,
+        "missing must",
+    ),
+    (
+        "NaN where not missing",
+        lambda mf: mf(torch.full((2, 6), float("nan")), missing=torch.eye(2, 6).bool()),
+        ValueError,
+        "v holds",
+    ),
 ]
 
 
@@ -449,3 +462,49 @@ def test_bad_call_changes_nothing(call, error, fragment):
         call(mf)
     assert_unchanged(mf, before)
     assert (mf.iterations, mf.converged, mf.residual) == record
+
+
+@pytest.mark.parametrize("update", ["colour", "parallel"])
+@pytest.mark.parametrize("shape", ["rbm", "chain3", "semi_restricted"])
+def test_missing_visible_values_are_inferred(shape, update):
+    sizes = {"semi_restricted": (5, 3)}.get(shape, MODELS.get(shape))
+    model = randomize(build(shape, sizes), seed=13, scale=1.0)
+    v = data(6, sizes[0])
+    missing = torch.rand(v.shape, generator=torch.Generator().manual_seed(14)) < 0.4
+    missing[0] = True  # a row with nothing observed
+    mf = el.MeanField(model, update=update, tol=1e-11, max_iter=2000)
+    marginals = mf(torch.where(missing, float("nan"), v), missing=missing)
+    assert mf.converged
+    assert torch.equal(marginals[0][~missing], v[~missing])
+    # Mathematics: the fixed-point equation holds on the missing visible units and on every hidden
+    # unit; the observed units are clamped.
+    mu = stacked(marginals)
+    bias = torch.cat([layer.bias.detach() for layer in model.layers]).numpy()
+    gap = np.abs(expit(bias + mu @ interaction_matrix(model).detach().numpy()) - mu)
+    free_units = np.concatenate([missing.numpy(), np.ones((6, sum(sizes[1:])), dtype=bool)], axis=1)
+    assert gap[free_units].max() < 1e-10
+    assert gap[~free_units].max() > 1e-3  # negative control: observed units are not at their own fixed point
+
+
+def test_nothing_missing_is_plain_clamping():
+    model, v = model_of("chain3"), data(4, 4)
+    mf = el.MeanField(model, tol=1e-12)
+    plain, masked = mf(v), mf(v, missing=torch.zeros(4, 4, dtype=torch.bool))
+    for a, b in zip(plain, masked):
+        torch.testing.assert_close(a, b, rtol=0, atol=0)
+
+
+@pytest.mark.parametrize("backward", ["implicit", "unroll"])
+def test_gradients_with_missing_values_pass_gradcheck(backward):
+    model = model_of("chain3", seed=15)
+    missing = torch.tensor([[True, False, False, True], [False, True, False, False]])
+    mf = el.MeanField(model, tol=1e-13, max_iter=1000, backward=backward)
+    names = [name for name, _ in mf.named_parameters()]
+
+    def marginals(v, *params):
+        return tuple(functional_call(mf, dict(zip(names, params)), (v,), {"missing": missing}))
+
+    v = torch.rand(2, 4, dtype=DTYPE, generator=torch.Generator().manual_seed(16)).clamp(0.05, 0.95)
+    params = tuple(p.detach().clone().requires_grad_() for p in mf.parameters())
+    # torch.autograd.gradcheck: analytical against finite-difference Jacobians.
+    assert torch.autograd.gradcheck(marginals, (v.requires_grad_(), *params), atol=1e-6, rtol=1e-4)
