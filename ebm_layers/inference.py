@@ -317,10 +317,12 @@ class MeanField(nn.Module):
         if missing is not None:
             if not isinstance(missing, Tensor) or missing.dtype != torch.bool:
                 raise TypeError(f"missing must be a bool tensor (True where v is unknown), got {missing!r}")
-            if not isinstance(v, Tensor) or missing.shape != v.shape:
-                shape = tuple(v.shape) if isinstance(v, Tensor) else type(v).__name__
-                raise ValueError(f"missing must have the shape of v, {shape}, got {tuple(missing.shape)}")
-            v = torch.where(missing, 0.0, v)  # unknown values may be anything, NaN included
+            if isinstance(v, Tensor):
+                if missing.shape != v.shape:
+                    raise ValueError(
+                        f"missing must have the shape of v, {tuple(v.shape)}, got {tuple(missing.shape)}"
+                    )
+                v = torch.where(missing, 0.0, v)  # unknown values may be anything, NaN included
         v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
         clamped = {0: v}
         if missing is not None and bool(missing.any()):
