@@ -12,7 +12,7 @@ from collections.abc import Sequence
 import torch
 from torch import Tensor
 
-__all__ = ["check_batch", "check_index", "check_size", "check_states"]
+__all__ = ["check_batch", "check_count", "check_index", "check_size", "check_states"]
 
 
 def check_size(name: str, value: object) -> int:
@@ -21,6 +21,15 @@ def check_size(name: str, value: object) -> int:
         raise TypeError(f"{name} must be an int, got {value!r} ({type(value).__name__})")
     if value <= 0:
         raise ValueError(f"{name} must be positive, got {value}")
+    return int(value)
+
+
+def check_count(name: str, value: object) -> int:
+    """Return ``value`` as an int after checking it is a whole number >= 0."""
+    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
+        raise TypeError(f"{name} must be an int, got {value!r} ({type(value).__name__})")
+    if value < 0:
+        raise ValueError(f"{name} must be >= 0, got {value}")
     return int(value)
 
 

@@ -77,17 +77,20 @@ def update_layer(
     edges: Sequence[Edge],
     transform: Callable[[Tensor], Tensor],
     observed: tuple[Tensor, Tensor] | None = None,
+    *,
+    unitwise: bool = False,
 ) -> Tensor:
     """New state ``(B, n_target)`` of layer ``target``: ``transform`` of each unit's total input.
 
     ``transform`` maps logits to new values: ``torch.sigmoid`` for a mean-field update, a
-    Bernoulli draw for a Gibbs update. Without a lateral coupling the units are independent
-    given the other layers and are updated at once. With one (``W`` symmetric, zero diagonal)
-    they are updated one at a time in index order, each from the newest values of the others;
-    the lateral input is kept up to date with one rank-one correction per unit, so a sweep costs
-    about one ``(B, n) @ (n, n)`` product and never modifies a tensor in place (autograd can
-    differentiate it). Only the layers coupled to ``target`` (and ``target`` itself when it has
-    a lateral coupling) need to be in ``states``.
+    Bernoulli draw for a Gibbs update. By default every unit is updated at once from the current
+    states, right when the layer has no lateral coupling (its units are then independent given
+    the other layers). With ``unitwise`` and a lateral coupling (``W`` symmetric, zero diagonal)
+    the units are updated one at a time in index order, each from the newest values of the
+    others; the lateral input is kept up to date with one rank-one correction per unit, so a
+    sweep costs about one ``(B, n) @ (n, n)`` product and never modifies a tensor in place
+    (autograd can differentiate it). Only the layers coupled to ``target`` (``target`` itself
+    included when it has a lateral coupling) need to be in ``states``.
 
     ``observed = (mask, values)``, both ``(B, n_target)``: units where ``mask`` is True keep
     ``values`` instead of being updated (clamped units of a partly observed layer).
@@ -97,7 +100,7 @@ def update_layer(
         return new if observed is None else torch.where(observed[0][:, columns], observed[1][:, columns], new)
 
     lateral = next((w for edge, w in zip(edges, weights) if edge == (target, target)), None)
-    if lateral is None:
+    if lateral is None or not unitwise:
         return keep_observed(transform(layer_logits(states, target, biases, weights, edges)))
     others = [(edge, w) for edge, w in zip(edges, weights) if edge != (target, target)]
     logits = layer_logits(states, target, biases, [w for _, w in others], [edge for edge, _ in others])

@@ -12,7 +12,7 @@ from collections.abc import Collection, Sequence
 from dataclasses import dataclass
 from itertools import combinations
 
-__all__ = ["UpdateSchedule", "colour_classes", "first_coupled_pair", "smallest_cover"]
+__all__ = ["UpdateSchedule", "check_schedule", "colour_classes", "first_coupled_pair", "smallest_cover"]
 
 Edge = tuple[int, int]
 
@@ -30,6 +30,31 @@ class UpdateSchedule:
 
     classes: tuple[tuple[int, ...], ...]
     unitwise: frozenset[int]
+
+
+def check_schedule(schedule: object, num_layers: int, edges: Sequence[Edge]) -> None:
+    """Raise unless ``schedule`` makes block Gibbs sampling and colour-ordered mean field correct.
+
+    Every layer must be in exactly one class, no dense coupling may join two layers of one class
+    (they would be updated together from each other's old values), and every layer with a lateral
+    coupling must be updated unit by unit. Classes may come in any order, and a class may be
+    split further.
+    """
+    if not isinstance(schedule, UpdateSchedule):
+        raise TypeError(f"schedule must be an UpdateSchedule, got {type(schedule).__name__}")
+    listed = [layer for layers in schedule.classes for layer in layers]
+    if sorted(listed) != list(range(num_layers)):
+        raise ValueError(
+            f"schedule.classes must hold every layer 0..{num_layers - 1} exactly once, got {schedule.classes}"
+        )
+    position = {layer: c for c, layers in enumerate(schedule.classes) for layer in layers}
+    for a, b in edges:
+        if a == b and a not in schedule.unitwise:
+            raise ValueError(f"layer {a} has lateral couplings, so schedule.unitwise must contain it")
+        if a != b and position[a] == position[b]:
+            raise ValueError(
+                f"layers {a} and {b} are coupled, so schedule.classes must not put them in one class"
+            )
 
 
 def colour_classes(num_layers: int, edges: Sequence[Edge]) -> tuple[tuple[int, ...], ...]:

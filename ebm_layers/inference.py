@@ -244,8 +244,18 @@ class MeanField(nn.Module):
     def _class_update(self, marginals: Marginals, layers: Sequence[int], problem: _Problem) -> Marginals:
         """New marginals of one colour class, all computed from the current ``marginals``."""
         biases, weights, edges = problem.biases, problem.weights, self.model.edges
+        unitwise = self.model.schedule.unitwise
         return {
-            i: F.update_layer(marginals, i, biases, weights, edges, torch.sigmoid, problem.observed_units(i))
+            i: F.update_layer(
+                marginals,
+                i,
+                biases,
+                weights,
+                edges,
+                torch.sigmoid,
+                problem.observed_units(i),
+                unitwise=i in unitwise,
+            )
             for i in layers
         }
 

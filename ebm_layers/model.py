@@ -12,7 +12,7 @@ from . import functional as F
 from ._checks import check_batch, check_index, check_size, check_states
 from ._random import resolve_generator
 from .couplings import DenseCoupling, LateralCoupling
-from .graph import UpdateSchedule, colour_classes, first_coupled_pair
+from .graph import UpdateSchedule, check_schedule, colour_classes, first_coupled_pair
 from .layers import BinaryLayer
 
 __all__ = ["EnergyModel", "dbm", "rbm"]
@@ -40,7 +40,8 @@ class EnergyModel(nn.Module):
     Attributes:
         layers, couplings: ``nn.ModuleList`` of the modules above.
         edges: ``(a, b)`` of every coupling, in coupling order.
-        schedule: the :class:`UpdateSchedule` (colour classes, unit-by-unit layers).
+        schedule: the :class:`UpdateSchedule` (colour classes, unit-by-unit layers); another valid
+            schedule (classes reordered or split) may be assigned.
 
     Examples::
 
@@ -59,6 +60,16 @@ class EnergyModel(nn.Module):
             classes=colour_classes(len(layers), self.edges),
             unitwise=frozenset(a for a, b in self.edges if a == b),
         )
+
+    @property
+    def schedule(self) -> UpdateSchedule:
+        """How sampling and mean field visit the layers; assigning another one checks it first."""
+        return self._schedule
+
+    @schedule.setter
+    def schedule(self, schedule: UpdateSchedule) -> None:
+        check_schedule(schedule, len(self.layers), self.edges)
+        self._schedule = schedule
 
     @property
     def sizes(self) -> tuple[int, ...]:

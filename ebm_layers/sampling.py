@@ -11,7 +11,7 @@ from torch import Tensor, nn
 from tqdm.auto import tqdm
 
 from . import functional as F
-from ._checks import check_batch, check_size
+from ._checks import check_batch, check_count, check_size
 from ._random import resolve_generator
 from .model import EnergyModel
 from .statistics import Statistics
@@ -45,6 +45,8 @@ class PersistentSampler(nn.Module):
 
     Shape:
         - ``sampler()``, ``particles``: a list with one ``(P, n_i)`` tensor per layer, detached.
+          These are the buffers themselves: a sweep replaces them and never writes into them, so
+          a returned list keeps its values, but writing into it changes the chains.
         - ``sample(num_samples)``: one ``(num_samples, n_i)`` tensor per layer.
 
     Attributes:
@@ -91,7 +93,9 @@ class PersistentSampler(nn.Module):
         for i, n in enumerate(model.sizes):
             self.register_buffer(f"particles_{i}", torch.empty(self.num_particles, n, dtype=model.dtype))
         self.reset()
+        self._loading_generator = False
         self.register_state_dict_pre_hook(_record_generator_state)
+        self.register_load_state_dict_pre_hook(_note_generator_state)
         self.register_load_state_dict_post_hook(_restore_generator_state)
 
     @property
@@ -137,7 +141,9 @@ class PersistentSampler(nn.Module):
                     probabilities[layer] = torch.sigmoid(logits)
                     new[layer] = draw(logits)
                 else:
-                    new[layer] = F.update_layer(states, layer, biases, weights, edges, draw)
+                    new[layer] = F.update_layer(
+                        states, layer, biases, weights, edges, draw, unitwise=layer in unitwise
+                    )
             for layer, x in new.items():
                 states[layer] = x
         return probabilities
@@ -178,8 +184,7 @@ class PersistentSampler(nn.Module):
             one ``(num_samples, n_i)`` tensor per layer, binary, detached.
         """
         num_samples = check_size("num_samples", num_samples)
-        if isinstance(burn_in, bool) or not isinstance(burn_in, int) or burn_in < 0:
-            raise ValueError(f"burn_in must be a whole number >= 0, got {burn_in!r}")
+        burn_in = check_count("burn_in", burn_in)
         thin = check_size("thin", thin)
         rounds = math.ceil(num_samples / self.num_particles)
         recorded: list[list[Tensor]] = []
@@ -205,6 +210,13 @@ def _record_generator_state(module: PersistentSampler, prefix: str, keep_vars: b
     module.generator_state = module.generator.get_state()
 
 
+def _note_generator_state(module: PersistentSampler, state_dict, prefix: str, *args) -> None:
+    """Before ``load_state_dict()``: note whether it brings a generator state."""
+    module._loading_generator = prefix + "generator_state" in state_dict
+
+
 def _restore_generator_state(module: PersistentSampler, incompatible_keys) -> None:
-    """After ``load_state_dict()``: continue the generator from the loaded state."""
-    module.generator.set_state(module.generator_state)
+    """After ``load_state_dict()``: continue the generator from the loaded state, if one was loaded."""
+    if module._loading_generator:
+        module.generator.set_state(module.generator_state)
+    module._loading_generator = False

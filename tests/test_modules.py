@@ -216,3 +216,26 @@ def test_free_energy_in_another_dtype_stays_differentiable(lateral_model, genera
     assert torch.allclose(free_energy, expected, atol=1e-12)
     free_energy.sum().backward()
     assert all(p.grad is not None and p.grad.dtype == torch.float32 for p in lateral_model.parameters())
+
+
+def test_schedule_may_be_reordered_or_split_but_not_broken():
+    model = el.dbm(3, 2, 2, 2)
+    model.schedule = el.UpdateSchedule(classes=((1, 3), (0,), (2,)), unitwise=frozenset())  # valid
+    assert model.schedule.classes == ((1, 3), (0,), (2,))
+    lateral = make_lateral_model()
+    wrong = [
+        (
+            model,
+            el.UpdateSchedule(classes=((0, 1), (2, 3)), unitwise=frozenset()),
+            "layers 0 and 1 are coupled",
+        ),
+        (model, el.UpdateSchedule(classes=((0, 2), (1,)), unitwise=frozenset()), "every layer 0..3"),
+        (model, el.UpdateSchedule(classes=((0, 2), (1, 3), (2,)), unitwise=frozenset()), "exactly once"),
+        (lateral, el.UpdateSchedule(classes=((0,), (1, 2)), unitwise=frozenset()), "schedule.unitwise"),
+        (model, ((0, 2), (1, 3)), "UpdateSchedule"),
+    ]
+    for target, schedule, fragment in wrong:
+        before = target.schedule
+        with pytest.raises((TypeError, ValueError), match=fragment):
+            target.schedule = schedule
+        assert target.schedule is before
