@@ -8,22 +8,12 @@ Run: ``python benchmarks/enumeration.py [--visible 100] [--hidden 20] [--repeats
 """
 
 import argparse
-import time
 
 import torch
+from timing import best_time
 from torch.nn.functional import softplus
 
 import ebm_layers as el
-
-
-def best_time(function, repeats: int) -> float:
-    """Fastest of ``repeats`` runs, in seconds (the least disturbed by other work)."""
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        function()
-        times.append(time.perf_counter() - start)
-    return min(times)
 
 
 def main() -> None:

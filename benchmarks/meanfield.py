@@ -8,21 +8,11 @@ backward. Everything is measured side by side in one run.
 from __future__ import annotations
 
 import argparse
-import time
 
 import torch
+from timing import best_time
 
 import ebm_layers as el
-
-
-def best_time(run, repeats: int = 5) -> float:
-    run()
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        run()
-        times.append(time.perf_counter() - start)
-    return min(times)
 
 
 def peak_graph_bytes(run) -> int:
