@@ -54,6 +54,8 @@ class MeanField(nn.Module):
     - ``backward="unroll"``: backpropagate through every iteration.
 
     Under ``torch.no_grad()`` (or with nothing requiring grad) no graph and no extra update.
+    The implicit backward gives first derivatives only (no ``create_graph`` double backward);
+    use ``backward="unroll"`` for higher ones.
 
     Args:
         model: the :class:`EnergyModel`; registered as a submodule.
@@ -137,7 +139,15 @@ class MeanField(nn.Module):
             self.iterations, self.converged, self.residual = 0, True, 0.0
             return [problem.clamped[i] for i in range(len(self.model.layers))]
         graph = torch.is_grad_enabled() and problem.requires_grad()
-        implicit = graph and self.backward == "implicit"
+        # One colour update is exact when the free layers form one class without lateral couplings
+        # (an RBM): recording that single update is already the whole graph.
+        classes = problem.classes(self.model.schedule)
+        one_pass = (
+            self.update == "colour"
+            and len(classes) == 1
+            and not self.model.schedule.unitwise & set(classes[0])
+        )
+        implicit = graph and self.backward == "implicit" and not one_pass
         with torch.set_grad_enabled(graph and not implicit):
             marginals = self._solve(problem)
         if implicit:
@@ -186,10 +196,13 @@ class MeanField(nn.Module):
         self.converged = self.residual < self.tol
         if not self.converged and not self._warned:
             self._warned = True
+            resolution = 10 * torch.finfo(self.model.dtype).eps
+            hint = f"; {self.model.dtype} resolves residuals only to about {resolution:.0e}"
+            hint = hint if self.tol < resolution else ""
             warnings.warn(
                 f"mean field did not converge in max_iter={self.max_iter} updates: residual "
                 f"{self.residual:.3g} > tol={self.tol:g} (warned once per module); raise max_iter, "
-                "or use damping / update='colour'",
+                f"or use damping / update='colour'{hint}",
                 RuntimeWarning,
                 stacklevel=5,
             )

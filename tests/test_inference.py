@@ -95,6 +95,32 @@ def test_rbm_is_exact_in_one_pass(monkeypatch):
     torch.testing.assert_close(hidden, exact, rtol=1e-10, atol=1e-12)
 
 
+def test_rbm_with_gradients_still_costs_one_pass(monkeypatch):
+    model, v = model_of("rbm"), data(4, 5)
+    calls = count_logits(monkeypatch)
+    hidden = el.MeanField(model)(v)[1]
+    assert len(calls) == 1 and hidden.requires_grad
+    (gradient,) = torch.autograd.grad(hidden.sum(), model.couplings[0].weight)
+    # Mathematics: d/dW_ij sum_bk sigmoid(c_k + v_b W_k) = sum_b v_bi s'(.)_bj.
+    slope = hidden * (1 - hidden)
+    torch.testing.assert_close(gradient, v.T @ slope.detach())
+
+
+def test_float32_tol_below_its_resolution_says_so():
+    """Rounding keeps a float32 residual near its epsilon (measured here: 1.2e-7), never 1e-9."""
+    generator = torch.Generator().manual_seed(0)
+    model = el.dbm(60, 40, 40, generator=generator)
+    with torch.no_grad():
+        for coupling in model.couplings:
+            coupling.weight.normal_(0.0, 0.5, generator=generator)
+    v = torch.bernoulli(torch.full((20, 60), 0.5), generator=generator)
+    with (
+        pytest.warns(RuntimeWarning, match="torch.float32 resolves residuals only to about 1e-06"),
+        torch.no_grad(),
+    ):
+        el.MeanField(model, tol=1e-9, max_iter=300)(v)
+
+
 def test_clamped_layer_leaves_one_free_class():
     model = model_of("chain3")
     v, top = data(4, 4), data(4, 2, seed=2)
@@ -492,6 +518,17 @@ def test_nothing_missing_is_plain_clamping():
     plain, masked = mf(v), mf(v, missing=torch.zeros(4, 4, dtype=torch.bool))
     for a, b in zip(plain, masked):
         torch.testing.assert_close(a, b, rtol=0, atol=0)
+
+
+@pytest.mark.parametrize("backward", ["implicit", "unroll"])
+def test_gradients_through_a_clamped_layer_pass_gradcheck(backward):
+    model = model_of("chain4", seed=17)
+    mf = el.MeanField(model, tol=1e-13, max_iter=1000, backward=backward)
+    generator = torch.Generator().manual_seed(18)
+    v = torch.rand(2, 3, dtype=DTYPE, generator=generator).clamp(0.05, 0.95).requires_grad_()
+    top = torch.rand(2, 2, dtype=DTYPE, generator=generator).clamp(0.05, 0.95).requires_grad_()
+    # torch.autograd.gradcheck: analytical against finite-difference Jacobians, in v and the clamped layer.
+    assert torch.autograd.gradcheck(lambda v, top: tuple(mf(v, clamp={3: top})[1:3]), (v, top))
 
 
 @pytest.mark.parametrize("backward", ["implicit", "unroll"])
