@@ -55,6 +55,8 @@ def test_quickstart_runs_and_prints_exact_log_partition():
     assert result.returncode == 0, result.stderr
     assert result.stdout.count("exact log partition function:") == 2
     assert "E(v, h)" in result.stdout
+    assert "persistent chains after 50 sweeps vs exact" in result.stdout
+    assert "did not converge" not in result.stderr
 
 
 def test_readme_python_examples_run():
