@@ -305,30 +305,42 @@ class MeanField(nn.Module):
         return marginals
 
     def _adjoint(self, step: Callable[[Tensor], Tensor], star: Tensor, grad: Tensor) -> Tensor:
-        """Solve ``u = grad + J^T u`` by iteration, ``J`` the Jacobian of ``step`` at ``star``."""
+        """Solve ``u = grad + J^T u`` by iteration, ``J`` the Jacobian of ``step`` at ``star``.
+
+        Converges at the forward's own rate near a stable fixed point; diverges (an error) at an
+        unstable one, such as a saddle that damped parallel updates settled on by symmetry.
+        """
         if grad is None:  # an undefined gradient stays undefined
             return grad
         point = star.clone().requires_grad_()
         with torch.enable_grad():
             image = step(point)
-        u = grad
-        scale = float(grad.abs().max())
+        # The adjoint is solved no more finely than the dtype resolves (float32: about 1e-6).
+        tol = max(self.tol, 10 * torch.finfo(star.dtype).eps)
+        u, scale, changes = grad, float(grad.abs().max()), []
         for _ in range(self.max_iter):
             (pulled,) = torch.autograd.grad(image, point, u, retain_graph=True)
             u_next = grad + pulled
-            change = float((u_next - u).abs().max())
+            changes.append(float((u_next - u).abs().max()))
             u = u_next
             scale = max(scale, float(u.abs().max()))
-            if change <= self.tol * scale or not math.isfinite(change):
+            if changes[-1] <= tol * scale or not math.isfinite(changes[-1]):
                 break
-        if not change <= self.tol * scale:
-            warnings.warn(
-                f"the implicit mean-field backward did not converge in max_iter={self.max_iter} "
-                f"iterations (last change {change:.3g}); gradients are approximate, consider "
-                "backward='unroll'",
-                RuntimeWarning,
-                stacklevel=2,
+        if changes[-1] <= tol * scale:
+            return u
+        if not math.isfinite(changes[-1]) or changes[-1] > changes[0]:
+            raise RuntimeError(
+                "the implicit mean-field backward diverged: the fixed point is not stable under "
+                f"the {self.update} update (for example a saddle that damped parallel updates "
+                "settled on by symmetry); use update='colour' or backward='unroll'"
             )
+        warnings.warn(
+            f"the implicit mean-field backward did not converge in max_iter={self.max_iter} "
+            f"iterations (last change {changes[-1]:.3g}); gradients are approximate, consider "
+            "raising max_iter or backward='unroll'",
+            RuntimeWarning,
+            stacklevel=2,
+        )
         return u
 
     # -- input checks ----------------------------------------------------------------------

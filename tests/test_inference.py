@@ -214,6 +214,22 @@ def test_undamped_parallel_can_raise_the_free_energy():
     assert (np.diff(np.stack(energies), axis=0) > 1e-3).any()
 
 
+def test_implicit_backward_at_a_saddle_raises_instead_of_returning_garbage():
+    model, v = inhibition_pair(), torch.zeros(1, 1, dtype=DTYPE)
+    mf = el.MeanField(model, update="parallel", damping=0.5, tol=1e-10)
+    marginals = mf(v)
+    assert mf.converged  # at the symmetric saddle, where the damped update has eigenvalue 1.22
+    asymmetric = marginals[1].sum() - 2 * marginals[2].sum()
+    with pytest.raises(RuntimeError, match="backward diverged"):
+        asymmetric.backward()
+    assert all(p.grad is None for p in model.parameters())  # nothing reached the parameters
+    # The unrolled backward differentiates the iterations themselves and stays finite.
+    unrolled = el.MeanField(model, update="parallel", damping=0.5, tol=1e-10, backward="unroll")(v)
+    (unrolled[1].sum() - 2 * unrolled[2].sum()).backward()
+    grads = [p.grad for p in model.parameters() if p.grad is not None]
+    assert len(grads) == 3 and all(torch.isfinite(g).all() for g in grads)  # the visible bias is unused
+
+
 def frustrated_triangle() -> el.EnergyModel:
     """Three laterally coupled hidden units with mutual inhibition -2.4 and bias 2.4, plus a
     weakly coupled visible layer.
