@@ -50,7 +50,8 @@ class MeanField(nn.Module):
       ``g`` is replaced by the solution of ``u = g + J^T u``, with ``J`` the Jacobian of that
       same update. Iterating it converges at the forward's own rate (the damped or colour-ordered
       update, never the plain undamped one), and memory does not grow with the number of
-      iterations. When the forward did not converge, it falls back to unrolling, with a warning.
+      iterations. When the forward did not converge, it falls back to unrolling, with a warning;
+      at an unstable fixed point (a saddle) the adjoint diverges and the backward raises.
     - ``backward="unroll"``: backpropagate through every iteration.
 
     Under ``torch.no_grad()`` (or with nothing requiring grad) no graph and no extra update.
@@ -68,7 +69,7 @@ class MeanField(nn.Module):
             each free layer from the layers below it, in index order.
 
     Shape:
-        - ``mf(v, clamp)``: ``v`` ``(B, n_0)``; ``clamp`` maps further layer indices to
+        - ``mf(v, clamp, missing)``: ``v`` ``(B, n_0)``; ``clamp`` maps further layer indices to
           ``(B, n_i)``. Returns one ``(B, n_i)`` tensor per layer: the clamped values themselves
           and the marginals of the free layers.
         - ``missing``: optional bool ``(B, n_0)``, True where ``v`` is unknown. Those units are
