@@ -6,7 +6,7 @@ import math
 import numbers
 import warnings
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import torch
 from torch import Tensor, nn
@@ -178,7 +178,7 @@ class MeanField(nn.Module):
         biases, weights = problem.biases, problem.weights
         for i in problem.free:
             if self.init == "bottom-up":
-                below = [(e, w) for e, w in zip(self.model.edges, weights) if i in e and min(e) < i]
+                below = [(e, w) for e, w in zip(problem.edges, weights) if i in e and min(e) < i]
                 logits = F.layer_logits(marginals, i, biases, [w for _, w in below], [e for e, _ in below])
                 start = torch.sigmoid(logits).expand(problem.batch, -1)
             else:
@@ -192,6 +192,7 @@ class MeanField(nn.Module):
         Sets ``iterations``, ``converged`` and ``residual``; warns once when not converged.
         """
         marginals = self._initial(problem)
+        problem = problem.reduced()
         iterate = self._iterate_parallel if self.update == "parallel" else self._iterate_colour
         self.iterations, self.residual = iterate(marginals, problem)
         self.converged = self.residual < self.tol
@@ -211,7 +212,7 @@ class MeanField(nn.Module):
 
     def _targets(self, marginals: Marginals, layers: Sequence[int], problem: _Problem) -> Marginals:
         """``sigmoid(input(mu))`` of ``layers``, all units at once (observed units keep their values)."""
-        biases, weights, edges = problem.biases, problem.weights, self.model.edges
+        biases, weights, edges = problem.biases, problem.weights, problem.edges
         return {
             i: problem.keep_observed(i, torch.sigmoid(F.layer_logits(marginals, i, biases, weights, edges)))
             for i in layers
@@ -257,7 +258,7 @@ class MeanField(nn.Module):
 
     def _class_update(self, marginals: Marginals, layers: Sequence[int], problem: _Problem) -> Marginals:
         """New marginals of one colour class, all computed from the current ``marginals``."""
-        biases, weights, edges = problem.biases, problem.weights, self.model.edges
+        biases, weights, edges = problem.biases, problem.weights, problem.edges
         unitwise = self.model.schedule.unitwise
         return {
             i: F.update_layer(
@@ -287,6 +288,7 @@ class MeanField(nn.Module):
 
     def _attach_implicit(self, fixed_point: Marginals, problem: _Problem) -> Marginals:
         """Record one update at the fixed point; its backward solves the adjoint equation."""
+        problem = problem.reduced()
         free = problem.free
         sizes = [self.model.sizes[i] for i in free]
         star = torch.cat([fixed_point[i].detach() for i in free], dim=1)
@@ -377,7 +379,7 @@ class MeanField(nn.Module):
                     f"clamp[{i}]", x, model.sizes[i], dtype=model.dtype, batch=v.shape[0]
                 )
         free = [i for i in range(len(model.layers)) if i not in clamped]
-        return _Problem(clamped, free, v.shape[0], model.biases(), model.weights(), observed)
+        return _Problem(clamped, free, v.shape[0], model.biases(), model.weights(), model.edges, observed)
 
     def extra_repr(self) -> str:
         damping = f", damping={self.damping}" if self.update == "parallel" else ""
@@ -396,6 +398,7 @@ class _Problem:
     batch: int
     biases: list[Tensor]
     weights: list[Tensor]
+    edges: Sequence[tuple[int, int]]  # of ``weights``
     observed: tuple[Tensor, Tensor] | None = None  # (mask, values) of layer 0 when values are missing
 
     def requires_grad(self) -> bool:
@@ -419,17 +422,41 @@ class _Problem:
         mask, values = self.observed
         return torch.where(mask, values, new)
 
+    def reduced(self) -> _Problem:
+        """The same problem with the clamped layers folded into the free layers' biases.
+
+        What a clamped layer sends to a free one does not change while the iteration runs, so it
+        is computed once: each free layer gets a ``(B, n_i)`` bias ``b_i + sum_m x_m W_mi`` over
+        its clamped neighbours ``m``, and only the couplings between free layers remain.
+        """
+        biases = list(self.biases)
+        for i in self.free:
+            inputs = [
+                (e, w)
+                for e, w in zip(self.edges, self.weights)
+                if i in e and _other_end(e, i) in self.clamped
+            ]
+            logits = F.layer_logits(
+                self.clamped, i, self.biases, [w for _, w in inputs], [e for e, _ in inputs]
+            )
+            biases[i] = logits.expand(self.batch, -1)
+        kept = [(e, w) for e, w in zip(self.edges, self.weights) if e[0] in self.free and e[1] in self.free]
+        return replace(self, biases=biases, weights=[w for _, w in kept], edges=[e for e, _ in kept])
+
     def detached(self) -> _Problem:
         """The same problem with every tensor detached (for the adjoint iteration's graph)."""
         observed = None if self.observed is None else (self.observed[0], self.observed[1].detach())
-        return _Problem(
-            {i: x.detach() for i, x in self.clamped.items()},
-            self.free,
-            self.batch,
-            [b.detach() for b in self.biases],
-            [w.detach() for w in self.weights],
-            observed,
+        return replace(
+            self,
+            clamped={i: x.detach() for i, x in self.clamped.items()},
+            biases=[b.detach() for b in self.biases],
+            weights=[w.detach() for w in self.weights],
+            observed=observed,
         )
+
+
+def _other_end(edge: tuple[int, int], layer: int) -> int:
+    return edge[1] if edge[0] == layer else edge[0]
 
 
 def _max_change(new: Marginals, old: Marginals) -> float:

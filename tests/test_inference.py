@@ -18,7 +18,6 @@ from scipy.special import expit
 from torch.func import functional_call
 
 import ebm_layers as el
-from ebm_layers import functional as F
 from tests.conftest import assert_unchanged, snapshot
 from tests.test_exact import brute_force, build, interaction_matrix, randomize
 
@@ -79,15 +78,21 @@ def test_converged_marginals_are_a_fixed_point(shape, update):
     assert mf.iterations < 2000
 
 
+def count_matrix_products(monkeypatch) -> list[int]:
+    """Count the products ``torch.addmm`` computes (every layer input goes through it)."""
+    calls: list[int] = []
+    addmm = torch.addmm
+    monkeypatch.setattr(torch, "addmm", lambda *args: calls.append(1) or addmm(*args))
+    return calls
+
+
 def test_rbm_is_exact_in_one_pass(monkeypatch):
     model = model_of("rbm", scale=2.0)
     v = data(8, 5)
-    calls = []
-    logits = F.layer_logits
-    monkeypatch.setattr(F, "layer_logits", lambda *args: calls.append(1) or logits(*args))
+    calls = count_matrix_products(monkeypatch)
     with torch.no_grad():
         hidden = el.MeanField(model)(v)[1]
-    assert len(calls) == 1  # one matrix product: the update, and no residual check after it
+    assert len(calls) == 1  # one matrix product, v @ W, and no residual check after the update
     # Exact enumeration (mathematics): p(h_j = 1 | v) from the joint probabilities of every state.
     ref = brute_force(model)
     rows = [(ref.states[0] == row).all(1) for row in v]
@@ -97,7 +102,7 @@ def test_rbm_is_exact_in_one_pass(monkeypatch):
 
 def test_rbm_with_gradients_still_costs_one_pass(monkeypatch):
     model, v = model_of("rbm"), data(4, 5)
-    calls = count_logits(monkeypatch)
+    calls = count_matrix_products(monkeypatch)
     hidden = el.MeanField(model)(v)[1]
     assert len(calls) == 1 and hidden.requires_grad
     (gradient,) = torch.autograd.grad(hidden.sum(), model.couplings[0].weight)
@@ -376,23 +381,17 @@ def test_implicit_backward_memory_does_not_grow_with_iterations():
     assert peaks["unroll", 1e-12] > 2 * peaks["unroll", 1e-3] > 2 * peaks["implicit", 1e-12]
 
 
-def count_logits(monkeypatch) -> list[int]:
-    calls: list[int] = []
-    logits = F.layer_logits
-    monkeypatch.setattr(F, "layer_logits", lambda *args: calls.append(1) or logits(*args))
-    return calls
-
-
 def test_no_grad_costs_nothing_extra(monkeypatch):
     model, v = model_of("chain3"), data(4, 4)
-    calls = count_logits(monkeypatch)
+    calls = count_matrix_products(monkeypatch)
     with torch.no_grad():
         plain = el.MeanField(model, tol=1e-10)(v)
     without_graph = len(calls)
     calls.clear()
     tracked = el.MeanField(model, tol=1e-10)(v)
-    # With a graph, the implicit backward records exactly one more colour sweep (two classes).
-    assert len(calls) == without_graph + 2
+    # With a graph, the implicit backward records one more colour sweep: the input of the clamped
+    # visible layer again (v @ W01), then the two classes (h1 @ W12 and h2 @ W12^T).
+    assert len(calls) == without_graph + 3
     assert not any(mu.requires_grad for mu in plain) and tracked[1].requires_grad
     for a, b in zip(plain, tracked):
         torch.testing.assert_close(a, b.detach(), rtol=1e-6, atol=1e-6)

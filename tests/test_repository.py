@@ -72,7 +72,7 @@ def test_readme_python_examples_run():
     "script, arguments, expected",
     [
         ("enumeration.py", ["--visible", "8", "--hidden", "5"], "plain one-shot torch / exact_log_partition"),
-        ("meanfield.py", ["--sizes", "12", "8", "6", "--batch", "4"], "GEMM/iteration"),
+        ("meanfield.py", ["--sizes", "12", "8", "6", "--batch", "4"], "GEMM roofline/call"),
     ],
 )
 def test_benchmarks_run_at_tiny_size(script, arguments, expected):
