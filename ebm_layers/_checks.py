@@ -12,7 +12,7 @@ from collections.abc import Sequence
 import torch
 from torch import Tensor
 
-__all__ = ["check_batch", "check_count", "check_index", "check_size", "check_states"]
+__all__ = ["check_batch", "check_count", "check_index", "check_real", "check_size", "check_states"]
 
 
 def check_size(name: str, value: object) -> int:
@@ -31,6 +31,13 @@ def check_count(name: str, value: object) -> int:
     if value < 0:
         raise ValueError(f"{name} must be >= 0, got {value}")
     return int(value)
+
+
+def check_real(name: str, value: object) -> float:
+    """Return ``value`` as a float after checking it is a real number (bools refused)."""
+    if isinstance(value, bool) or not isinstance(value, numbers.Real):
+        raise TypeError(f"{name} must be a number, got {value!r} ({type(value).__name__})")
+    return float(value)
 
 
 def check_index(name: str, value: object, count: int | None = None) -> int:

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import math
-import numbers
 import warnings
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, replace
@@ -12,7 +11,7 @@ import torch
 from torch import Tensor, nn
 
 from . import functional as F
-from ._checks import check_batch, check_index, check_size
+from ._checks import check_batch, check_index, check_real, check_size
 from .graph import UpdateSchedule
 from .model import EnergyModel
 from .statistics import Statistics
@@ -111,10 +110,10 @@ class MeanField(nn.Module):
             raise ValueError(f"update must be one of {UPDATES}, got {update!r}")
         if backward not in BACKWARDS:
             raise ValueError(f"backward must be one of {BACKWARDS}, got {backward!r}")
-        _check_real("damping", damping)
+        check_real("damping", damping)
         if not 0.0 <= damping < 1.0:
             raise ValueError(f"damping must lie in [0, 1), got {damping}")
-        _check_real("tol", tol)
+        check_real("tol", tol)
         if not 0.0 < tol < math.inf:
             raise ValueError(f"tol must be positive and finite, got {tol}")
         self.max_iter = check_size("max_iter", max_iter)
@@ -122,7 +121,7 @@ class MeanField(nn.Module):
             if init != "bottom-up":
                 raise ValueError(f"init must be a value in [0, 1] or 'bottom-up', got {init!r}")
         else:
-            _check_real("init", init)
+            check_real("init", init)
             if not 0.0 <= init <= 1.0:
                 raise ValueError(f"init must be a value in [0, 1] or 'bottom-up', got {init}")
         self.model = model
@@ -462,8 +461,3 @@ def _other_end(edge: tuple[int, int], layer: int) -> int:
 def _max_change(new: Marginals, old: Marginals) -> float:
     """``max |new - old|`` over the layers of ``new``, the batch and the units (0 when empty)."""
     return max((float((new[i] - old[i]).detach().abs().max()) for i in new), default=0.0)
-
-
-def _check_real(name: str, value: object) -> None:
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise TypeError(f"{name} must be a number, got {value!r} ({type(value).__name__})")
