@@ -171,6 +171,6 @@ def pair_mean(x_a: Tensor, x_b: Tensor, sample_weights: Tensor | None = None) ->
 def bernoulli(logits: Tensor, generator: torch.Generator) -> Tensor:
     """Draw binary units with ``p(x = 1) = sigmoid(logits)``; same shape and dtype as ``logits``.
 
-    The one place the library draws Bernoulli units, so a faster draw can replace it.
+    The one place Gibbs updates draw Bernoulli units, so a faster draw can replace it.
     """
     return torch.bernoulli(torch.sigmoid(logits), generator=generator)
