@@ -15,22 +15,27 @@ from torch import Tensor
 __all__ = ["check_batch", "check_count", "check_index", "check_real", "check_size", "check_states"]
 
 
-def check_size(name: str, value: object) -> int:
-    """Return ``value`` as an int after checking it is a positive whole number."""
+def _whole_number(name: str, value: object) -> int:
+    """Return ``value`` as an int after checking it is an integer (bools refused)."""
     if isinstance(value, bool) or not isinstance(value, numbers.Integral):
         raise TypeError(f"{name} must be an int, got {value!r} ({type(value).__name__})")
+    return int(value)
+
+
+def check_size(name: str, value: object) -> int:
+    """Return ``value`` as an int after checking it is a positive whole number."""
+    value = _whole_number(name, value)
     if value <= 0:
         raise ValueError(f"{name} must be positive, got {value}")
-    return int(value)
+    return value
 
 
 def check_count(name: str, value: object) -> int:
     """Return ``value`` as an int after checking it is a whole number >= 0."""
-    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
-        raise TypeError(f"{name} must be an int, got {value!r} ({type(value).__name__})")
+    value = _whole_number(name, value)
     if value < 0:
         raise ValueError(f"{name} must be >= 0, got {value}")
-    return int(value)
+    return value
 
 
 def check_real(name: str, value: object) -> float:
@@ -42,8 +47,7 @@ def check_real(name: str, value: object) -> float:
 
 def check_index(name: str, value: object, count: int | None = None) -> int:
     """Return ``value`` as an int after checking it indexes one of ``count`` layers (any >= 0 if None)."""
-    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
-        raise TypeError(f"{name} must be an int, got {value!r} ({type(value).__name__})")
+    value = _whole_number(name, value)
     if count is None:
         if value < 0:
             raise ValueError(f"{name} must be a layer index >= 0, got {value}")
@@ -53,7 +57,7 @@ def check_index(name: str, value: object, count: int | None = None) -> int:
             if count
             else f"{name}={value} but there are no layers"
         )
-    return int(value)
+    return value
 
 
 def check_batch(

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import math
 import warnings
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Collection, Mapping, Sequence
 from dataclasses import dataclass, replace
 
 import torch
@@ -182,7 +182,8 @@ class MeanField(nn.Module):
                 start = torch.sigmoid(logits).expand(problem.batch, -1)
             else:
                 start = biases[i].new_full((problem.batch, self.model.sizes[i]), self.init)
-            marginals[i] = problem.keep_observed(i, start)
+            observed = problem.observed_units(i)
+            marginals[i] = start if observed is None else torch.where(*observed, start)
         return marginals
 
     def _solve(self, problem: _Problem) -> Marginals:
@@ -211,11 +212,7 @@ class MeanField(nn.Module):
 
     def _targets(self, marginals: Marginals, layers: Sequence[int], problem: _Problem) -> Marginals:
         """``sigmoid(input(mu))`` of ``layers``, all units at once (observed units keep their values)."""
-        biases, weights, edges = problem.biases, problem.weights, problem.edges
-        return {
-            i: problem.keep_observed(i, torch.sigmoid(F.layer_logits(marginals, i, biases, weights, edges)))
-            for i in layers
-        }
+        return self._layer_updates(marginals, layers, problem, unitwise=frozenset())
 
     def _damped(self, marginals: Marginals, targets: Marginals) -> Marginals:
         lam = self.damping
@@ -257,15 +254,20 @@ class MeanField(nn.Module):
 
     def _class_update(self, marginals: Marginals, layers: Sequence[int], problem: _Problem) -> Marginals:
         """New marginals of one colour class, all computed from the current ``marginals``."""
-        biases, weights, edges = problem.biases, problem.weights, problem.edges
-        unitwise = self.model.schedule.unitwise
+        return self._layer_updates(marginals, layers, problem, self.model.schedule.unitwise)
+
+    def _layer_updates(
+        self, marginals: Marginals, layers: Sequence[int], problem: _Problem, unitwise: Collection[int]
+    ) -> Marginals:
+        """Mean-field updates of ``layers`` from the current ``marginals``; those in ``unitwise``
+        unit by unit, the others all units at once."""
         return {
             i: F.update_layer(
                 marginals,
                 i,
-                biases,
-                weights,
-                edges,
+                problem.biases,
+                problem.weights,
+                problem.edges,
                 torch.sigmoid,
                 problem.observed_units(i),
                 unitwise=i in unitwise,
@@ -350,7 +352,6 @@ class MeanField(nn.Module):
     def _problem(self, v: Tensor, clamp: Mapping[int, Tensor] | None, missing: Tensor | None) -> _Problem:
         """Validate the inputs of a call and gather what the iteration needs."""
         model = self.model
-        observed = None
         if missing is not None:
             if not isinstance(missing, Tensor) or missing.dtype != torch.bool:
                 raise TypeError(f"missing must be a bool tensor (True where v is unknown), got {missing!r}")
@@ -361,10 +362,10 @@ class MeanField(nn.Module):
                     )
                 v = torch.where(missing, 0.0, v)  # unknown values may be anything, NaN included
         v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
-        clamped = {0: v}
         if missing is not None and bool(missing.any()):
-            observed = (~missing, v)
-            del clamped[0]
+            clamped, observed = {}, (~missing, v)
+        else:
+            clamped, observed = {0: v}, None
         if clamp is not None:
             if not isinstance(clamp, Mapping):
                 raise TypeError(
@@ -413,13 +414,6 @@ class _Problem:
 
     def observed_units(self, layer: int) -> tuple[Tensor, Tensor] | None:
         return self.observed if layer == 0 else None
-
-    def keep_observed(self, layer: int, new: Tensor) -> Tensor:
-        """``new`` marginals of ``layer`` with its observed units put back."""
-        if layer != 0 or self.observed is None:
-            return new
-        mask, values = self.observed
-        return torch.where(mask, values, new)
 
     def reduced(self) -> _Problem:
         """The same problem with the clamped layers folded into the free layers' biases.

@@ -9,7 +9,7 @@ import torch
 from torch import Tensor, nn
 
 from . import functional as F
-from ._checks import check_batch, check_index, check_size, check_states
+from ._checks import check_batch, check_index, check_real, check_size, check_states
 from ._random import resolve_generator
 from .couplings import DenseCoupling, LateralCoupling
 from .graph import UpdateSchedule, check_schedule, colour_classes, first_coupled_pair
@@ -171,8 +171,7 @@ class EnergyModel(nn.Module):
         UTML TR 2010-003, 2010), section 8; the pseudocount keeps constant units finite.
         """
         check_batch("data", data, self.sizes[0])
-        if isinstance(pseudocount, bool) or not isinstance(pseudocount, int | float):
-            raise TypeError(f"pseudocount must be a number, got {pseudocount!r}")
+        pseudocount = check_real("pseudocount", pseudocount)
         if not 0 < pseudocount < math.inf:
             raise ValueError(f"pseudocount must be positive and finite, got {pseudocount}")
         counts = data.detach().to(torch.float64).sum(0)

@@ -111,13 +111,10 @@ class PersistentSampler(nn.Module):
     def reset(self) -> None:
         """Draw fresh particles from ``init`` with the sampler's generator."""
         dtype = self.model.dtype
-        states = [
-            torch.bernoulli(torch.full_like(x, 0.5, dtype=dtype), generator=self.generator)
-            for x in self.particles
-        ]
+        probabilities = [torch.full_like(x, 0.5, dtype=dtype) for x in self.particles]
         if isinstance(self.init, Tensor):
-            states[0] = torch.bernoulli(self.init.to(dtype), generator=self.generator)
-        self._set_particles(states)
+            probabilities[0] = self.init.to(dtype)
+        self._set_particles([torch.bernoulli(p, generator=self.generator) for p in probabilities])
 
     @torch.no_grad()
     def _sweep(self, states: list[Tensor], keep_probabilities: bool = False) -> dict[int, Tensor]:

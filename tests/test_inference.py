@@ -256,12 +256,13 @@ def frustrated_triangle() -> el.EnergyModel:
     return model
 
 
-def gradient_inputs(mf: el.MeanField, v: torch.Tensor):
-    """``f(v, *parameters)`` -> marginals of every free layer, for gradcheck over all of them."""
+def gradient_inputs(mf: el.MeanField, v: torch.Tensor, first: int = 1, **call):
+    """``f(v, *parameters)`` -> marginals of layers ``first`` onwards (keywords ``call`` passed to
+    ``mf``), for gradcheck over v and every parameter."""
     names = [name for name, _ in mf.named_parameters()]
 
     def marginals(v, *params):
-        return tuple(functional_call(mf, dict(zip(names, params)), (v,))[1:])
+        return tuple(functional_call(mf, dict(zip(names, params)), (v,), call)[first:])
 
     params = tuple(p.detach().clone().requires_grad_() for p in mf.parameters())
     return marginals, (v.clone().requires_grad_(), *params)
@@ -551,12 +552,8 @@ def test_gradients_with_missing_values_pass_gradcheck(backward):
     model = model_of("chain3", seed=15)
     missing = torch.tensor([[True, False, False, True], [False, True, False, False]])
     mf = el.MeanField(model, tol=1e-13, max_iter=1000, backward=backward)
-    names = [name for name, _ in mf.named_parameters()]
-
-    def marginals(v, *params):
-        return tuple(functional_call(mf, dict(zip(names, params)), (v,), {"missing": missing}))
-
     v = torch.rand(2, 4, dtype=DTYPE, generator=torch.Generator().manual_seed(16)).clamp(0.05, 0.95)
-    params = tuple(p.detach().clone().requires_grad_() for p in mf.parameters())
+    # Layer 0 included: its filled-in values depend on v and the parameters too.
+    function, inputs = gradient_inputs(mf, v, first=0, missing=missing)
     # torch.autograd.gradcheck: analytical against finite-difference Jacobians.
-    assert torch.autograd.gradcheck(marginals, (v.requires_grad_(), *params), atol=1e-6, rtol=1e-4)
+    assert torch.autograd.gradcheck(function, inputs, atol=1e-6, rtol=1e-4)
