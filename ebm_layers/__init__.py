@@ -8,22 +8,27 @@ from .inference import MeanField
 from .layers import BinaryLayer
 from .metrics import exact_log_likelihood
 from .model import EnergyModel, dbm, rbm
+from .objective import Monitors, TwoPhaseObjective, weight_decay_groups
 from .partition import exact_log_partition
-from .sampling import PersistentSampler
+from .sampling import DataParticles, PersistentSampler
 from .statistics import Statistics
 
 __all__ = [
     "BinaryLayer",
+    "DataParticles",
     "DenseCoupling",
     "EnergyModel",
     "ExactStatistics",
     "LateralCoupling",
     "MeanField",
+    "Monitors",
     "PersistentSampler",
     "Statistics",
+    "TwoPhaseObjective",
     "UpdateSchedule",
     "dbm",
     "exact_log_likelihood",
     "exact_log_partition",
     "rbm",
+    "weight_decay_groups",
 ]

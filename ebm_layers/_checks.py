@@ -12,7 +12,15 @@ from collections.abc import Sequence
 import torch
 from torch import Tensor
 
-__all__ = ["check_batch", "check_count", "check_index", "check_real", "check_size", "check_states"]
+__all__ = [
+    "check_batch",
+    "check_count",
+    "check_example_index",
+    "check_index",
+    "check_real",
+    "check_size",
+    "check_states",
+]
 
 
 def _whole_number(name: str, value: object) -> int:
@@ -115,3 +123,19 @@ def check_states(name: str, states: object, sizes: Sequence[int], dtype: torch.d
         check_batch(f"{name}[{i}]", x, width, dtype=dtype, batch=batch)
         batch = x.shape[0]
     return list(states)
+
+
+def check_example_index(name: str, index: object, num_examples: int, batch: int) -> Tensor:
+    """Check a ``(batch,)`` integer tensor of example indices in ``0..num_examples - 1``."""
+    if not isinstance(index, Tensor):
+        raise TypeError(f"{name} must be a torch.Tensor of example indices, got {type(index).__name__}")
+    if index.dtype.is_floating_point or index.dtype.is_complex or index.dtype == torch.bool:
+        raise TypeError(f"{name} must have an integer dtype, got {index.dtype}")
+    if tuple(index.shape) != (batch,):
+        raise ValueError(
+            f"{name} must have shape ({batch},), one index per example, got {tuple(index.shape)}"
+        )
+    low, high = int(index.min()), int(index.max())
+    if low < 0 or high >= num_examples:
+        raise ValueError(f"{name} must lie in 0..{num_examples - 1}, got values from {low} to {high}")
+    return index

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Collection, Sequence
 from functools import partial
 
 import torch
@@ -11,12 +11,51 @@ from torch import Tensor, nn
 from tqdm.auto import tqdm
 
 from . import functional as F
-from ._checks import check_batch, check_count, check_size
-from ._random import resolve_generator
+from ._checks import check_batch, check_count, check_example_index, check_size
+from ._random import resolve_generator, track_generator_state
 from .model import EnergyModel
 from .statistics import Statistics
 
-__all__ = ["PersistentSampler"]
+__all__ = ["DataParticles", "PersistentSampler", "gibbs_sweep"]
+
+
+@torch.no_grad()
+def gibbs_sweep(
+    model: EnergyModel,
+    states: list[Tensor],
+    generator: torch.Generator,
+    *,
+    clamped: Collection[int] = (),
+    keep_probabilities: bool = False,
+) -> dict[int, Tensor]:
+    """Advance ``states`` (one ``(B, n_i)`` per layer, replaced in the list) by one block Gibbs sweep.
+
+    The colour classes of ``model.schedule`` are visited in turn; every layer of a class is drawn
+    from the states before the class update, ``schedule.unitwise`` layers unit by unit. Layers in
+    ``clamped`` keep their states. Returns the conditional probabilities of the last class's
+    layers without lateral couplings when ``keep_probabilities``, else an empty dict.
+    """
+    biases, weights, edges = model.biases(), model.weights(), model.edges
+    classes, unitwise = model.schedule.classes, model.schedule.unitwise
+    draw = partial(F.bernoulli, generator=generator)
+    probabilities: dict[int, Tensor] = {}
+    for c, layers in enumerate(classes):
+        last = keep_probabilities and c == len(classes) - 1
+        new = {}
+        for layer in layers:
+            if layer in clamped:
+                continue
+            if last and layer not in unitwise:
+                logits = F.layer_logits(states, layer, biases, weights, edges)
+                probabilities[layer] = torch.sigmoid(logits)
+                new[layer] = draw(logits)
+            else:
+                new[layer] = F.update_layer(
+                    states, layer, biases, weights, edges, draw, unitwise=layer in unitwise
+                )
+        for layer, x in new.items():
+            states[layer] = x
+    return probabilities
 
 
 class PersistentSampler(nn.Module):
@@ -89,14 +128,10 @@ class PersistentSampler(nn.Module):
         self.generator = resolve_generator(generator)
         self.init = init
         self.probabilities = probabilities
-        self.register_buffer("generator_state", self.generator.get_state())
+        track_generator_state(self)
         for i, n in enumerate(model.sizes):
             self.register_buffer(f"particles_{i}", torch.empty(self.num_particles, n, dtype=model.dtype))
         self.reset()
-        self._loading_generator = False
-        self.register_state_dict_pre_hook(_record_generator_state)
-        self.register_load_state_dict_pre_hook(_note_generator_state)
-        self.register_load_state_dict_post_hook(_restore_generator_state)
 
     @property
     def particles(self) -> list[Tensor]:
@@ -117,41 +152,14 @@ class PersistentSampler(nn.Module):
         self._set_particles([torch.bernoulli(p, generator=self.generator) for p in probabilities])
 
     @torch.no_grad()
-    def _sweep(self, states: list[Tensor], keep_probabilities: bool = False) -> dict[int, Tensor]:
-        """Advance ``states`` (one per layer, replaced in the list) by one block Gibbs sweep.
-
-        Returns the conditional probabilities of the last class's layers without lateral
-        couplings when ``keep_probabilities``, else an empty dict.
-        """
-        model = self.model
-        biases, weights, edges = model.biases(), model.weights(), model.edges
-        classes, unitwise = model.schedule.classes, model.schedule.unitwise
-        draw = partial(F.bernoulli, generator=self.generator)
-        probabilities: dict[int, Tensor] = {}
-        for c, layers in enumerate(classes):
-            last = keep_probabilities and c == len(classes) - 1
-            # Every layer of the class is drawn from the states before the class update.
-            new = {}
-            for layer in layers:
-                if last and layer not in unitwise:
-                    logits = F.layer_logits(states, layer, biases, weights, edges)
-                    probabilities[layer] = torch.sigmoid(logits)
-                    new[layer] = draw(logits)
-                else:
-                    new[layer] = F.update_layer(
-                        states, layer, biases, weights, edges, draw, unitwise=layer in unitwise
-                    )
-            for layer, x in new.items():
-                states[layer] = x
-        return probabilities
-
-    @torch.no_grad()
     def _advance(self, sweeps: int, keep_probabilities: bool = False) -> dict[int, Tensor]:
         # The model may have been converted on its own (e.g. model.double()): follow its dtype.
         states = [x.to(self.model.dtype) for x in self.particles]
         probabilities: dict[int, Tensor] = {}
         for s in range(sweeps):
-            probabilities = self._sweep(states, keep_probabilities and s == sweeps - 1)
+            probabilities = gibbs_sweep(
+                self.model, states, self.generator, keep_probabilities=keep_probabilities and s == sweeps - 1
+            )
         self._set_particles(states)
         return probabilities
 
@@ -202,18 +210,77 @@ class PersistentSampler(nn.Module):
         )
 
 
-def _record_generator_state(module: PersistentSampler, prefix: str, keep_vars: bool) -> None:
-    """Before ``state_dict()``: copy the generator's current state into its buffer."""
-    module.generator_state = module.generator.get_state()
+class DataParticles(nn.Module):
+    """Data-specific persistent particles: one hidden configuration per training example.
 
+    Each call clamps the visible layer to a batch of examples, advances those examples' own
+    hidden states by ``sweeps`` block Gibbs sweeps and stores them back: a positive phase that
+    samples the posterior of deep models instead of approximating it by mean field, with chains
+    that persist from one visit of an example to the next (useful for full-batch learning on
+    small data, where every example is visited at every step).
 
-def _note_generator_state(module: PersistentSampler, state_dict, prefix: str, *args) -> None:
-    """Before ``load_state_dict()``: note whether it brings a generator state."""
-    module._loading_generator = prefix + "generator_state" in state_dict
+    Args:
+        model: the :class:`EnergyModel`; registered as a submodule.
+        num_examples: number of training examples ``N``; they are addressed by index ``0..N-1``.
+        sweeps: sweeps per visit of an example.
+        generator: the ``torch.Generator`` of every draw (``None``: a private one seeded from
+            the global RNG). Its state is saved in ``state_dict()`` and restored on load.
 
+    Shape:
+        - ``statistics(v, index)``: ``v`` ``(B, n_0)``, ``index`` ``(B,)`` integer; returns the
+          :class:`Statistics` of the clamped batch with its updated hidden states (detached).
+          An index repeated within a batch is stored once (the last copy).
 
-def _restore_generator_state(module: PersistentSampler, incompatible_keys) -> None:
-    """After ``load_state_dict()``: continue the generator from the loaded state, if one was loaded."""
-    if module._loading_generator:
-        module.generator.set_state(module.generator_state)
-    module._loading_generator = False
+    Attributes:
+        states_<i>: ``uint8`` buffer ``(N, n_i)`` of the hidden states of layer ``i >= 1``, drawn
+            uniformly at construction.
+        generator_state: ``uint8`` buffer, the generator's state when ``state_dict()`` was taken.
+
+    Examples::
+
+        >>> import ebm_layers as el
+        >>> g = torch.Generator().manual_seed(0)
+        >>> particles = el.DataParticles(el.rbm(6, 3, generator=g), num_examples=50, generator=g)
+        >>> v = torch.bernoulli(torch.full((4, 6), 0.5), generator=g)
+        >>> particles.statistics(v, torch.tensor([0, 7, 8, 49])).pairs[0].shape
+        torch.Size([6, 3])
+    """
+
+    generator_state: Tensor
+
+    def __init__(
+        self, model: EnergyModel, num_examples: int, sweeps: int = 1, generator: torch.Generator | None = None
+    ) -> None:
+        super().__init__()
+        if not isinstance(model, EnergyModel):
+            raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
+        self.num_examples = check_size("num_examples", num_examples)
+        self.sweeps = check_size("sweeps", sweeps)
+        self.model = model
+        self.generator = resolve_generator(generator)
+        track_generator_state(self)
+        for i, n in enumerate(model.sizes[1:], start=1):
+            uniform = torch.full((self.num_examples, n), 0.5)
+            self.register_buffer(
+                f"states_{i}", torch.bernoulli(uniform, generator=self.generator).to(torch.uint8)
+            )
+
+    @torch.no_grad()
+    def statistics(self, v: Tensor, index: Tensor) -> Statistics:
+        """Clamp ``v`` ``(B, n_0)``, advance examples ``index`` ``(B,)``, return their Statistics."""
+        model = self.model
+        v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
+        index = check_example_index("index", index, self.num_examples, v.shape[0])
+        stored = [getattr(self, f"states_{i}") for i in range(1, len(model.sizes))]
+        states = [v, *(x[index].to(model.dtype) for x in stored)]
+        for _ in range(self.sweeps):
+            gibbs_sweep(model, states, self.generator, clamped={0})
+        for buffer, x in zip(stored, states[1:]):
+            buffer[index] = x.to(torch.uint8)
+        return Statistics.from_states(states, model.edges)
+
+    def forward(self, v: Tensor, index: Tensor) -> Statistics:
+        return self.statistics(v, index)
+
+    def extra_repr(self) -> str:
+        return f"num_examples={self.num_examples}, sweeps={self.sweeps}"

@@ -1,0 +1,303 @@
+"""TwoPhaseObjective: data statistics and model statistics turned into gradients for any optimizer."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import torch
+from torch import Tensor, nn
+
+from ._checks import check_batch, check_real
+from .enumeration import ExactStatistics
+from .graph import first_coupled_pair
+from .inference import MeanField
+from .model import EnergyModel
+from .sampling import DataParticles, PersistentSampler
+from .statistics import Statistics
+
+__all__ = ["Monitors", "TwoPhaseObjective", "weight_decay_groups"]
+
+
+class TwoPhaseObjective(nn.Module):
+    r"""The maximum-likelihood learning rule of a Boltzmann machine as a loss for any torch loop.
+
+    ``loss = objective(v)`` gathers the positive (data) statistics of the batch and the negative
+    (model) statistics, then returns a surrogate whose gradient with respect to every bias and
+    weight is exactly minus their difference:
+    :math:`-(\langle x_l\rangle_{data} - \langle x_l\rangle_{model})` for a bias :math:`b_l`,
+    :math:`-(\langle x_a^\top x_b\rangle_{data} - \langle x_a^\top x_b\rangle_{model})` for a weight
+    (half of it for a lateral weight, whose energy term carries 1/2). That is the gradient of the
+    average negative log-likelihood when both phases are exact, so ``loss.backward()`` followed by
+    any ``torch.optim`` step, scheduler or gradient clipping performs the learning rule.
+
+    The surrogate is linear in the parameters with the detached differences as coefficients:
+    its backward is elementwise and costs no matrix product. **Its value is not a progress
+    measure** (it is not the log-likelihood and can move either way while the model improves);
+    watch :attr:`last` instead.
+
+    Args:
+        model: the :class:`EnergyModel` to train; registered as a submodule.
+        positive: the data phase, a :class:`MeanField` (default ``MeanField(model)``) or
+            :class:`DataParticles` (then call ``objective(v, index=idx)``).
+        negative: the model phase, a :class:`PersistentSampler` (default
+            ``PersistentSampler(model)``) or :class:`ExactStatistics`.
+        sparsity_target: off by default. A target mean activation ``p`` of every hidden unit: a
+            running average ``q`` of each hidden unit's data mean is kept (``sparsity_decay``)
+            and ``sparsity_cost * (q - p)`` is added to the gradient of its bias and, times the
+            data mean of the units on the other side, of the dense weights into it ("A Practical
+            Guide to Training Restricted Boltzmann Machines", UTML TR 2010-003, 2010, section 11).
+            Lateral weights get no sparsity term.
+        sparsity_cost, sparsity_decay: the strength of that term and the decay of the running average.
+        max_weight: divergence guard. Before the statistics of a step are used, every parameter
+            must be finite and every weight at most ``max_weight`` in magnitude, and the statistics
+            and loss must be finite; otherwise ``FloatingPointError`` is raised before any gradient
+            is written, so no non-finite value ever reaches the weights.
+
+    Shape:
+        - ``objective(v, index=None)``: ``v`` ``(B, n_0)``, ``index`` ``(B,)`` example indices
+          (only with :class:`DataParticles`); returns a 0-d tensor.
+
+    Attributes:
+        last: the :class:`Monitors` of the latest call (``None`` before the first).
+        sparsity_mean_<i>: buffer ``(n_i,)``, the running hidden means ``q`` (with ``sparsity_target``).
+
+    Examples::
+
+        >>> import ebm_layers as el
+        >>> g = torch.Generator().manual_seed(0)
+        >>> model = el.rbm(6, 3, generator=g)
+        >>> sampler = el.PersistentSampler(model, generator=g)
+        >>> objective = el.TwoPhaseObjective(model, el.MeanField(model), sampler)
+        >>> optimizer = torch.optim.SGD(model.parameters(), lr=0.1)
+        >>> v = torch.bernoulli(torch.full((8, 6), 0.5), generator=g)
+        >>> loss = objective(v)
+        >>> loss.backward(); optimizer.step()
+        >>> objective.last.pair_gaps[0] > 0
+        True
+    """
+
+    def __init__(
+        self,
+        model: EnergyModel,
+        positive: MeanField | DataParticles | None = None,
+        negative: PersistentSampler | ExactStatistics | None = None,
+        *,
+        sparsity_target: float | None = None,
+        sparsity_cost: float = 0.1,
+        sparsity_decay: float = 0.9,
+        max_weight: float = 1e4,
+    ) -> None:
+        super().__init__()
+        if not isinstance(model, EnergyModel):
+            raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
+        positive = MeanField(model) if positive is None else positive
+        negative = PersistentSampler(model) if negative is None else negative
+        for name, phase, kinds in (
+            ("positive", positive, (MeanField, DataParticles)),
+            ("negative", negative, (PersistentSampler, ExactStatistics)),
+        ):
+            if not isinstance(phase, kinds):
+                expected = " or ".join(kind.__name__ for kind in kinds)
+                raise TypeError(f"{name} must be a {expected}, got {type(phase).__name__}")
+            if phase.model is not model:
+                raise ValueError(f"{name} belongs to another model than the one given; build it from `model`")
+        if sparsity_target is not None:
+            sparsity_target = check_real("sparsity_target", sparsity_target)
+            if not 0.0 < sparsity_target < 1.0:
+                raise ValueError(f"sparsity_target must lie strictly between 0 and 1, got {sparsity_target}")
+        sparsity_cost = check_real("sparsity_cost", sparsity_cost)
+        if not 0.0 <= sparsity_cost < math.inf:
+            raise ValueError(f"sparsity_cost must be >= 0 and finite, got {sparsity_cost}")
+        sparsity_decay = check_real("sparsity_decay", sparsity_decay)
+        if not 0.0 <= sparsity_decay < 1.0:
+            raise ValueError(f"sparsity_decay must lie in [0, 1), got {sparsity_decay}")
+        max_weight = check_real("max_weight", max_weight)
+        if not 0.0 < max_weight:
+            raise ValueError(f"max_weight must be positive, got {max_weight}")
+        self.model, self.positive, self.negative = model, positive, negative
+        self.sparsity_target, self.sparsity_cost, self.sparsity_decay = (
+            sparsity_target,
+            sparsity_cost,
+            sparsity_decay,
+        )
+        self.max_weight = max_weight
+        if sparsity_target is not None:
+            for i, n in enumerate(model.sizes[1:], start=1):
+                self.register_buffer(
+                    f"sparsity_mean_{i}", torch.full((n,), sparsity_target, dtype=model.dtype)
+                )
+        self.last: Monitors | None = None
+
+    def forward(self, v: Tensor, index: Tensor | None = None) -> Tensor:
+        """The surrogate loss of batch ``v`` ``(B, n_0)`` (``index`` ``(B,)`` with DataParticles)."""
+        model = self.model
+        v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
+        with_index = isinstance(self.positive, DataParticles)
+        if with_index and index is None:
+            raise ValueError("index is required with DataParticles: pass objective(v, index=idx)")
+        if not with_index and index is not None:
+            raise ValueError("index is only used with DataParticles; MeanField needs no index")
+        self._check_parameters()
+        data = self.positive.statistics(v, index) if with_index else self.positive.statistics(v)
+        fantasy = self.negative.statistics()
+        difference = Statistics(
+            [d - m for d, m in zip(data.means, fantasy.means)],
+            [d - m for d, m in zip(data.pairs, fantasy.pairs)],
+        )
+        coefficients = self._with_sparsity(difference, data)
+        _check_finite("statistics", coefficients)
+        # Linear in the parameters: d loss / d theta = -coefficient, an elementwise backward.
+        loss = -sum((b * c).sum() for b, c in zip(model.biases(), coefficients.means))
+        for w, c, (a, b) in zip(model.weights(), coefficients.pairs, model.edges):
+            loss = loss - (w * c).sum() * (0.5 if a == b else 1.0)
+        if not bool(torch.isfinite(loss)):
+            raise FloatingPointError(f"the loss is {loss.item()}: {_LIKELY_CAUSE}")
+        particles = getattr(self.negative, "particles", None)
+        self.last = Monitors(
+            difference=difference,
+            data=v.detach(),
+            particles=None if particles is None else particles[0],
+            model=model,
+            mean_field_iterations=getattr(self.positive, "iterations", None),
+        )
+        return loss
+
+    def _check_parameters(self) -> None:
+        """The divergence guard on the parameters: all finite, weights within ``max_weight``."""
+        for name, parameter in self.model.named_parameters():
+            if not bool(torch.isfinite(parameter).all()):
+                raise FloatingPointError(f"parameter {name} holds non-finite values: {_LIKELY_CAUSE}")
+        for k, weight in enumerate(self.model.weights()):
+            largest = float(weight.detach().abs().max())
+            if largest > self.max_weight:
+                raise FloatingPointError(
+                    f"couplings[{k}].weight reached |w| = {largest:.4g}, above "
+                    f"max_weight={self.max_weight:g}: {_LIKELY_CAUSE}"
+                )
+
+    @torch.no_grad()
+    def _with_sparsity(self, difference: Statistics, data: Statistics) -> Statistics:
+        """The gradient coefficients: ``difference``, plus the sparsity term when it is on."""
+        if self.sparsity_target is None:
+            return difference
+        means, pairs = list(difference.means), list(difference.pairs)
+        deviation = {}
+        for i in range(1, len(means)):
+            running = getattr(self, f"sparsity_mean_{i}")
+            running.mul_(self.sparsity_decay).add_(data.means[i], alpha=1.0 - self.sparsity_decay)
+            deviation[i] = self.sparsity_cost * (running - self.sparsity_target)
+            means[i] = means[i] - deviation[i]
+        for k, (a, b) in enumerate(self.model.edges):
+            if a == b:
+                continue
+            if b in deviation:
+                pairs[k] = pairs[k] - torch.outer(data.means[a], deviation[b])
+            if a in deviation:
+                pairs[k] = pairs[k] - torch.outer(deviation[a], data.means[b])
+        return Statistics(means, pairs)
+
+    def extra_repr(self) -> str:
+        options = [f"max_weight={self.max_weight:g}"]
+        if self.sparsity_target is not None:
+            options.append(
+                f"sparsity_target={self.sparsity_target}, sparsity_cost={self.sparsity_cost}, "
+                f"sparsity_decay={self.sparsity_decay}"
+            )
+        return ", ".join(options)
+
+
+_LIKELY_CAUSE = (
+    "training is diverging, most likely because the learning rate is too high "
+    "(lower it, or clip gradients); the parameters were not updated by this step"
+)
+
+
+def _check_finite(what: str, stats: Statistics) -> None:
+    for kind, tensors in (("means", stats.means), ("pairs", stats.pairs)):
+        for i, tensor in enumerate(tensors):
+            if not bool(torch.isfinite(tensor).all()):
+                raise FloatingPointError(f"{what} {kind}[{i}] hold non-finite values: {_LIKELY_CAUSE}")
+
+
+@dataclass
+class Monitors:
+    """What to watch while training, from one call of a :class:`TwoPhaseObjective` (all detached).
+
+    Attributes:
+        difference: data minus model :class:`Statistics` of the step (without sparsity term).
+        data: the batch ``(B, n_0)``.
+        particles: the fantasy particles' visible states ``(P, n_0)`` (``None`` for exact statistics).
+        model: the model, for the free energies.
+        mean_field_iterations: iterations the positive phase used (``None`` without mean field).
+    """
+
+    difference: Statistics
+    data: Tensor
+    particles: Tensor | None
+    model: EnergyModel
+    mean_field_iterations: int | None
+
+    @property
+    def mean_gaps(self) -> list[float]:
+        """Root mean square of data minus model means, per layer."""
+        return [_rms(d) for d in self.difference.means]
+
+    @property
+    def pair_gaps(self) -> list[float]:
+        """Root mean square of data minus model pair averages, per coupling."""
+        return [_rms(d) for d in self.difference.pairs]
+
+    @property
+    def statistics_gap(self) -> float:
+        """Root mean square of the pair differences of every coupling together: it shrinks as the
+        model's statistics approach the data's (the learning rule's fixed point)."""
+        squares = sum(float(d.square().sum()) for d in self.difference.pairs)
+        return math.sqrt(squares / max(1, sum(d.numel() for d in self.difference.pairs)))
+
+    @property
+    def data_free_energy(self) -> float | None:
+        """Mean free energy of the batch under the model's *current* parameters (``None`` when the
+        model has no closed-form free energy)."""
+        return _mean_free_energy(self.model, self.data)
+
+    @property
+    def particle_free_energy(self) -> float | None:
+        """Mean free energy of the particles' visible states, as :attr:`data_free_energy`."""
+        return None if self.particles is None else _mean_free_energy(self.model, self.particles)
+
+
+def _rms(x: Tensor) -> float:
+    return float(x.square().mean().sqrt())
+
+
+@torch.no_grad()
+def _mean_free_energy(model: EnergyModel, v: Tensor) -> float | None:
+    if first_coupled_pair(model.edges, {0}) is not None:
+        return None
+    return float(model.free_energy(v.to(model.dtype)).mean())
+
+
+def weight_decay_groups(model: EnergyModel, weight_decay: float) -> list[dict]:
+    """Optimizer parameter groups that decay weights only, not biases.
+
+    ``torch.optim``'s ``weight_decay`` applies to every parameter of a group, biases included;
+    pass ``weight_decay_groups(model, 1e-4)`` instead of ``model.parameters()`` to decay only the
+    coupling weights (L2 weight-cost on weights alone: common practice, "A Practical Guide to
+    Training Restricted Boltzmann Machines", UTML TR 2010-003, 2010, section 10).
+
+    Examples::
+
+        >>> import ebm_layers as el
+        >>> groups = weight_decay_groups(el.dbm(6, 4, 2), 1e-4)
+        >>> [len(g["params"]) for g in groups], [g["weight_decay"] for g in groups]
+        ([2, 3], [0.0001, 0.0])
+    """
+    if not isinstance(model, EnergyModel):
+        raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
+    weight_decay = check_real("weight_decay", weight_decay)
+    if not 0.0 <= weight_decay < math.inf:
+        raise ValueError(f"weight_decay must be >= 0 and finite, got {weight_decay}")
+    weights = [p for c in model.couplings for p in c.parameters()]
+    biases = [layer.bias for layer in model.layers]
+    return [{"params": weights, "weight_decay": weight_decay}, {"params": biases, "weight_decay": 0.0}]
