@@ -12,6 +12,7 @@ from .objective import Monitors, TwoPhaseObjective, weight_decay_groups
 from .partition import exact_log_partition
 from .sampling import DataParticles, PersistentSampler
 from .statistics import Statistics
+from .train import FitResult, FitState, fit, load_checkpoint, save_checkpoint
 
 __all__ = [
     "BinaryLayer",
@@ -19,6 +20,8 @@ __all__ = [
     "DenseCoupling",
     "EnergyModel",
     "ExactStatistics",
+    "FitResult",
+    "FitState",
     "LateralCoupling",
     "MeanField",
     "Monitors",
@@ -29,6 +32,9 @@ __all__ = [
     "dbm",
     "exact_log_likelihood",
     "exact_log_partition",
+    "fit",
+    "load_checkpoint",
     "rbm",
+    "save_checkpoint",
     "weight_decay_groups",
 ]

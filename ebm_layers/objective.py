@@ -138,7 +138,7 @@ class TwoPhaseObjective(nn.Module):
             raise ValueError("index is required with DataParticles: pass objective(v, index=idx)")
         if not with_index and index is not None:
             raise ValueError("index is only used with DataParticles; MeanField needs no index")
-        self._check_parameters()
+        self.check_parameters()
         data = self.positive.statistics(v, index) if with_index else self.positive.statistics(v)
         fantasy = self.negative.statistics()
         difference = Statistics(
@@ -163,7 +163,7 @@ class TwoPhaseObjective(nn.Module):
         )
         return loss
 
-    def _check_parameters(self) -> None:
+    def check_parameters(self) -> None:
         """The divergence guard on the parameters: all finite, weights within ``max_weight``."""
         for name, parameter in self.model.named_parameters():
             if not bool(torch.isfinite(parameter).all()):

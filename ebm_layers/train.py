@@ -1,0 +1,342 @@
+"""fit(): a small training loop around TwoPhaseObjective, with progress, callbacks and atomic checkpoints.
+
+Everything here is reachable from a user's own loop: ``fit`` only builds a
+:class:`TwoPhaseObjective`, an optimizer and a scheduler, and calls ``objective(v)``,
+``loss.backward()`` and ``optimizer.step()`` batch after batch.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import time
+from collections.abc import Callable, Iterable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import torch
+from torch import Tensor
+from torch.utils.data import DataLoader
+from tqdm.auto import tqdm
+
+from ._checks import check_batch, check_count, check_size
+from ._random import resolve_generator
+from .graph import first_coupled_pair
+from .inference import MeanField
+from .model import EnergyModel
+from .objective import TwoPhaseObjective
+from .sampling import DataParticles, PersistentSampler
+
+__all__ = ["FitResult", "FitState", "fit", "load_checkpoint", "save_checkpoint"]
+
+# fit's defaults, chosen by benchmarks/digits_rbm.py (see DEVELOPERS.md for the figures).
+DEFAULT_EPOCHS = 100
+DEFAULT_BATCH_SIZE = 10
+DEFAULT_LEARNING_RATE = 0.05
+DEFAULT_MOMENTUM = 0.5
+DEFAULT_NUM_PARTICLES = 100
+DEFAULT_SWEEPS = 1
+
+_CHECKPOINT_FORMAT = "ebm_layers.fit/1"
+
+
+@dataclass
+class FitState:
+    """What a callback sees: ``callback(state)`` runs after every batch (``event == "batch"``) and
+    after every epoch (``event == "epoch"``, once the epoch's checkpoint is written).
+
+    Set ``state.stop = True`` to end training after the current batch or epoch.
+    """
+
+    event: str
+    epoch: int
+    step: int
+    objective: TwoPhaseObjective
+    optimizer: torch.optim.Optimizer
+    scheduler: object | None
+    history: list[dict]
+    stop: bool = False
+
+
+@dataclass
+class FitResult:
+    """What :func:`fit` returns: the pieces it trained with and one record per epoch.
+
+    ``history[e]`` holds ``epoch`` (1-based), ``learning_rate``, ``statistics_gap`` (mean over the
+    epoch's batches of :attr:`Monitors.statistics_gap`), ``free_energy_gap`` (mean free energy of
+    the validation data minus that of as many training examples; ``None`` without validation data
+    or closed-form free energy; it grows when the model overfits), ``mean_field_iterations``
+    (mean over batches, ``None`` without mean field) and ``seconds``.
+    """
+
+    objective: TwoPhaseObjective
+    optimizer: torch.optim.Optimizer
+    scheduler: object | None
+    history: list[dict] = field(default_factory=list)
+
+
+def fit(
+    model: EnergyModel,
+    data: Tensor | DataLoader,
+    *,
+    objective: TwoPhaseObjective | None = None,
+    optimizer: torch.optim.Optimizer | None = None,
+    scheduler: object | None = None,
+    epochs: int = DEFAULT_EPOCHS,
+    batch_size: int | None = None,
+    validation: Tensor | None = None,
+    callbacks: Sequence[Callable[[FitState], None]] = (),
+    progress: bool = True,
+    checkpoint: str | os.PathLike | None = None,
+    resume: str | os.PathLike | None = None,
+    generator: torch.Generator | None = None,
+) -> FitResult:
+    """Train ``model`` on ``data`` for ``epochs`` passes with the two-phase learning rule.
+
+    With no other argument this uses measured defaults (``benchmarks/digits_rbm.py``): mean
+    field for the data phase, ``DEFAULT_NUM_PARTICLES`` persistent chains advanced
+    ``DEFAULT_SWEEPS`` sweep(s) per batch for the model phase, batches of ``DEFAULT_BATCH_SIZE``,
+    SGD with momentum and a learning rate that decays as ``1 / (1 + epoch)``... see
+    ``default_optimizer``. A fresh model's zero visible biases are first set to the data's
+    base-rate log-odds.
+
+    Args:
+        model: the :class:`EnergyModel`.
+        data: a ``(N, n_0)`` tensor (shuffled every epoch with ``generator``), or a ``DataLoader``
+            yielding ``(B, n_0)`` tensors or tuples whose first item is the batch (with
+            :class:`DataParticles`, tuples ``(v, index)``). For a bit-identical resume, give a
+            shuffling loader its own ``generator``: its state is saved in checkpoints.
+        objective: a :class:`TwoPhaseObjective` of ``model`` (default: built as above).
+        optimizer: any ``torch.optim`` optimizer over the model's parameters (default: as above).
+        scheduler: a learning-rate scheduler stepped once per epoch (default: with the default
+            optimizer only, the decay above; with your own optimizer, none).
+        epochs: number of passes over the data, counted from the start (resuming at epoch k
+            runs ``epochs - k`` more).
+        batch_size: batch size for tensor data (default ``DEFAULT_BATCH_SIZE``).
+        validation: held-out ``(M, n_0)`` data for the free-energy gap of every epoch.
+        callbacks: callables run after every batch and every epoch, see :class:`FitState`.
+        progress: show a tqdm bar with the statistics gap (and the free-energy gap).
+        checkpoint: write a checkpoint to this path after every epoch, atomically (a temporary
+            file, then a rename), holding model, phases (particles, generator states), optimizer,
+            scheduler, epoch, history and the shuffling generator.
+        resume: continue from this checkpoint, bit-identically with an uninterrupted run given
+            the same arguments.
+        generator: the ``torch.Generator`` behind the default sampler and the shuffling.
+
+    Returns:
+        a :class:`FitResult`. Raises ``FloatingPointError`` (the divergence guard of
+        :class:`TwoPhaseObjective`) when training diverges.
+    """
+    if not isinstance(model, EnergyModel):
+        raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
+    epochs = check_count("epochs", epochs)
+    loader = data if isinstance(data, DataLoader) else None
+    if loader is not None:
+        if batch_size is not None:
+            raise ValueError(f"batch_size={batch_size} is set by the DataLoader; leave it None")
+    else:
+        data = check_batch("data", data, model.sizes[0], dtype=model.dtype)
+        batch_size = DEFAULT_BATCH_SIZE if batch_size is None else check_size("batch_size", batch_size)
+    if validation is not None:
+        validation = check_batch("validation", validation, model.sizes[0], dtype=model.dtype)
+    callbacks = _check_callbacks(callbacks)
+    generator = resolve_generator(generator)
+    if objective is None:
+        sampler = PersistentSampler(
+            model, num_particles=DEFAULT_NUM_PARTICLES, sweeps=DEFAULT_SWEEPS, generator=generator
+        )
+        objective = TwoPhaseObjective(model, MeanField(model), sampler)
+    elif not isinstance(objective, TwoPhaseObjective):
+        raise TypeError(f"objective must be a TwoPhaseObjective, got {type(objective).__name__}")
+    elif objective.model is not model:
+        raise ValueError("objective belongs to another model than the one given")
+    if optimizer is None:
+        optimizer, default_scheduler = default_optimizer(model)
+        scheduler = default_scheduler if scheduler is None else scheduler
+    elif not isinstance(optimizer, torch.optim.Optimizer):
+        raise TypeError(f"optimizer must be a torch.optim.Optimizer, got {type(optimizer).__name__}")
+    with_index = isinstance(objective.positive, DataParticles)
+    if with_index and loader is None and objective.positive.num_examples != data.shape[0]:
+        raise ValueError(
+            f"the DataParticles hold {objective.positive.num_examples} examples but data has {data.shape[0]}"
+        )
+    shuffling = loader.generator if loader is not None else _child_generator(generator)
+
+    result = FitResult(objective, optimizer, scheduler)
+    start = 0
+    if resume is not None:
+        start = _resume(resume, result, shuffling)
+    elif loader is None and _is_fresh(model):
+        model.init_visible_bias_from(data)
+
+    batches_per_epoch = math.ceil(data.shape[0] / batch_size) if loader is None else _length(loader)
+    total = None if batches_per_epoch is None else batches_per_epoch * (epochs - start)
+    step = start * (batches_per_epoch or 0)
+    with tqdm(total=total, unit="batch", disable=not progress, dynamic_ncols=True) as bar:
+        for epoch in range(start, epochs):
+            bar.set_description(f"epoch {epoch + 1}/{epochs}")
+            began = time.perf_counter()
+            gaps, iterations, seen = [], [], []
+            for v, index in _batches(data, loader, batch_size, shuffling, with_index):
+                loss = objective(v, index=index) if with_index else objective(v)
+                optimizer.zero_grad(set_to_none=True)
+                loss.backward()
+                optimizer.step()
+                step += 1
+                monitors = objective.last
+                gaps.append(monitors.statistics_gap)
+                iterations.append(monitors.mean_field_iterations)
+                if validation is not None and sum(len(x) for x in seen) < len(validation):
+                    seen.append(v.detach())
+                bar.update()
+                bar.set_postfix(gap=f"{gaps[-1]:.4f}", refresh=False)
+                state = FitState("batch", epoch, step, objective, optimizer, scheduler, result.history)
+                if _run(callbacks, state):
+                    break
+            objective.check_parameters()
+            record = {
+                "epoch": epoch + 1,
+                "learning_rate": optimizer.param_groups[0]["lr"],
+                "statistics_gap": sum(gaps) / max(1, len(gaps)),
+                "free_energy_gap": _free_energy_gap(model, validation, seen),
+                "mean_field_iterations": None
+                if None in iterations
+                else sum(iterations) / max(1, len(iterations)),
+                "seconds": time.perf_counter() - began,
+            }
+            result.history.append(record)
+            if scheduler is not None:
+                scheduler.step()
+            if checkpoint is not None:
+                save_checkpoint(_checkpoint_state(result, epoch + 1, shuffling), checkpoint)
+            if record["free_energy_gap"] is not None:
+                bar.set_postfix(
+                    gap=f"{record['statistics_gap']:.4f}", held_out_dF=f"{record['free_energy_gap']:.3f}"
+                )
+            state = FitState("epoch", epoch, step, objective, optimizer, scheduler, result.history)
+            if _run(callbacks, state) or state.stop:
+                break
+    return result
+
+
+def default_optimizer(
+    model: EnergyModel,
+) -> tuple[torch.optim.Optimizer, torch.optim.lr_scheduler.LRScheduler]:
+    """``fit``'s default optimizer and scheduler for ``model``: SGD with momentum
+    ``DEFAULT_MOMENTUM`` at ``DEFAULT_LEARNING_RATE``, decayed as ``1 / (1 + epoch)``."""
+    optimizer = torch.optim.SGD(model.parameters(), lr=DEFAULT_LEARNING_RATE, momentum=DEFAULT_MOMENTUM)
+    scheduler = torch.optim.lr_scheduler.LambdaLR(optimizer, _inverse_time_decay)
+    return optimizer, scheduler
+
+
+def _inverse_time_decay(epoch: int) -> float:
+    return 1.0 / (1.0 + epoch)
+
+
+def save_checkpoint(state: dict, path: str | os.PathLike) -> None:
+    """``torch.save(state)`` to ``path`` atomically: written to a temporary file in the same folder,
+    synced, then renamed over ``path``; a crash mid-write leaves the previous file intact."""
+    path = Path(path)
+    temporary = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        with open(temporary, "wb") as handle:
+            torch.save(state, handle)
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.replace(temporary, path)
+    except BaseException:
+        temporary.unlink(missing_ok=True)
+        raise
+
+
+def load_checkpoint(path: str | os.PathLike) -> dict:
+    """Read a checkpoint written by :func:`fit` (tensors and plain values only)."""
+    state = torch.load(Path(path), weights_only=True)
+    if not isinstance(state, dict) or state.get("format") != _CHECKPOINT_FORMAT:
+        raise ValueError(f"{path} is not a checkpoint written by fit (format {_CHECKPOINT_FORMAT})")
+    return state
+
+
+def _checkpoint_state(result: FitResult, epochs_done: int, shuffling: torch.Generator | None) -> dict:
+    return {
+        "format": _CHECKPOINT_FORMAT,
+        "epoch": epochs_done,
+        "objective": result.objective.state_dict(),
+        "optimizer": result.optimizer.state_dict(),
+        "scheduler": None if result.scheduler is None else result.scheduler.state_dict(),
+        "shuffling": None if shuffling is None else shuffling.get_state(),
+        "history": result.history,
+    }
+
+
+def _resume(path, result: FitResult, shuffling: torch.Generator | None) -> int:
+    state = load_checkpoint(path)
+    if (state["scheduler"] is None) != (result.scheduler is None):
+        raise ValueError(
+            f"resume={str(path)!r} was written with a different scheduler setting than this call"
+        )
+    result.objective.load_state_dict(state["objective"])
+    result.optimizer.load_state_dict(state["optimizer"])
+    if result.scheduler is not None:
+        result.scheduler.load_state_dict(state["scheduler"])
+    if shuffling is not None and state["shuffling"] is not None:
+        shuffling.set_state(state["shuffling"])
+    result.history.extend(state["history"])
+    return state["epoch"]
+
+
+def _batches(data, loader, batch_size, shuffling, with_index) -> Iterable[tuple[Tensor, Tensor | None]]:
+    """One epoch of ``(v, index)`` batches (``index`` None unless data-specific particles need it)."""
+    if loader is None:
+        order = torch.randperm(data.shape[0], generator=shuffling)
+        for start in range(0, data.shape[0], batch_size):
+            index = order[start : start + batch_size]
+            yield data[index], index if with_index else None
+        return
+    for batch in loader:
+        if isinstance(batch, Tensor):
+            if with_index:
+                raise ValueError("with DataParticles the DataLoader must yield (v, index) tuples")
+            yield batch, None
+        else:
+            yield batch[0], batch[1] if with_index else None
+
+
+@torch.no_grad()
+def _free_energy_gap(model: EnergyModel, validation: Tensor | None, seen: list[Tensor]) -> float | None:
+    if validation is None or not seen or first_coupled_pair(model.edges, {0}) is not None:
+        return None
+    training = torch.cat(seen)[: len(validation)]
+    held_out = validation[: len(training)]
+    return float(model.free_energy(held_out).mean() - model.free_energy(training).mean())
+
+
+def _is_fresh(model: EnergyModel) -> bool:
+    return not bool(model.layers[0].bias.detach().any())
+
+
+def _child_generator(generator: torch.Generator) -> torch.Generator:
+    seed = int(torch.randint(0, 2**62, (), dtype=torch.int64, generator=generator))
+    return torch.Generator().manual_seed(seed)
+
+
+def _length(loader: DataLoader) -> int | None:
+    try:
+        return len(loader)
+    except TypeError:
+        return None
+
+
+def _check_callbacks(callbacks) -> list:
+    if callable(callbacks) or not isinstance(callbacks, Sequence):
+        raise TypeError(f"callbacks must be a list of callables, got {type(callbacks).__name__}")
+    for i, callback in enumerate(callbacks):
+        if not callable(callback):
+            raise TypeError(f"callbacks[{i}] must be callable, got {type(callback).__name__}")
+    return list(callbacks)
+
+
+def _run(callbacks, state: FitState) -> bool:
+    for callback in callbacks:
+        callback(state)
+    return state.stop
