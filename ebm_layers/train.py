@@ -232,8 +232,10 @@ def default_optimizer(
 
 def save_checkpoint(state: dict, path: str | os.PathLike) -> None:
     """``torch.save(state)`` to ``path`` atomically: written to a temporary file in the same folder,
-    synced, then renamed over ``path``; a crash mid-write leaves the previous file intact."""
+    synced, then renamed over ``path``; a crash mid-write leaves the previous file intact.
+    Missing parent folders are created."""
     path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
     temporary = path.with_name(f".{path.name}.{os.getpid()}.tmp")
     try:
         with open(temporary, "wb") as handle:

@@ -57,9 +57,29 @@ def test_quickstart_runs_and_prints_exact_log_partition():
     assert "E(v, h)" in result.stdout
     assert "persistent chains after 50 sweeps vs exact" in result.stdout
     assert "did not converge" not in result.stderr
+    assert "own loop, 20 epochs" in result.stdout and "fit, 20 epochs" in result.stdout
 
 
-def test_readme_python_examples_run():
+def test_own_loop_example_runs(tmp_path):
+    result = subprocess.run(
+        [
+            sys.executable,
+            str(ROOT / "examples" / "own_loop.py"),
+            "--epochs",
+            "2",
+            "--checkpoint",
+            str(tmp_path / "c.pt"),
+        ],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+    assert result.returncode == 0, result.stderr
+    assert "test log p" in result.stdout and (tmp_path / "c.pt").exists()
+
+
+def test_readme_python_examples_run(tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)  # the examples write out/ files
     text = (ROOT / "README.md").read_text()
     examples = re.findall(r"^```python\n(.*?)^```", text, re.M | re.S)
     assert len(examples) >= 2
@@ -73,6 +93,11 @@ def test_readme_python_examples_run():
     [
         ("enumeration.py", ["--visible", "8", "--hidden", "5"], "plain one-shot torch / exact_log_partition"),
         ("meanfield.py", ["--sizes", "12", "8", "6", "--batch", "4"], "GEMM roofline/call"),
+        (
+            "digits_rbm.py",
+            ["--seeds", "0", "--epochs", "1", "--reference-steps", "2"],
+            "fit defaults: median",
+        ),
     ],
 )
 def test_benchmarks_run_at_tiny_size(script, arguments, expected):
