@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import torch
 from torch import Tensor, nn
@@ -232,10 +232,10 @@ class Monitors:
         mean_field_iterations: iterations the positive phase used (``None`` without mean field).
     """
 
-    difference: Statistics
-    data: Tensor
-    particles: Tensor | None
-    model: EnergyModel
+    difference: Statistics = field(repr=False)
+    data: Tensor = field(repr=False)
+    particles: Tensor | None = field(repr=False)
+    model: EnergyModel = field(repr=False)
     mean_field_iterations: int | None
 
     @property
