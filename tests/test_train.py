@@ -60,16 +60,22 @@ def test_fit_learns_the_digits(digits):
     assert log_likelihood > base_rate + 4.0
 
 
-def small_run(tmp_path: Path, *, epochs: int, stop_after: int | None = None, resume: bool = False, **options):
+def interrupt_after(stop_after: int | None):
+    """A callback that interrupts training (as Ctrl-C would) once epoch ``stop_after`` has ended."""
+
+    def interrupt(state: el.FitState) -> None:
+        if state.event == "epoch" and state.epoch + 1 == stop_after:
+            raise KeyboardInterrupt
+
+    return interrupt
+
+
+def small_run(tmp_path: Path, *, epochs: int, stop_after: int | None = None, resume: bool = False):
     """fit a 12-6 RBM on random binary data with a checkpoint; raise after epoch ``stop_after``."""
     tmp_path.mkdir(exist_ok=True)
     g = torch.Generator().manual_seed(0)
     data = torch.bernoulli(torch.full((60, 12), 0.3), generator=torch.Generator().manual_seed(1))
     model = el.rbm(12, 6, generator=g)
-
-    def interrupt(state: el.FitState) -> None:
-        if state.event == "epoch" and state.epoch + 1 == stop_after:
-            raise KeyboardInterrupt
 
     result = el.fit(
         model,
@@ -81,8 +87,7 @@ def small_run(tmp_path: Path, *, epochs: int, stop_after: int | None = None, res
         generator=g,
         checkpoint=tmp_path / "run.pt",
         resume=tmp_path / "run.pt" if resume else None,
-        callbacks=[interrupt],
-        **options,
+        callbacks=[interrupt_after(stop_after)],
     )
     return model, result
 
@@ -129,10 +134,6 @@ def test_resume_with_a_data_loader_and_data_particles(tmp_path):
             generator=torch.Generator().manual_seed(3),
         )
 
-        def interrupt(state):
-            if state.event == "epoch" and state.epoch + 1 == stop_after:
-                raise KeyboardInterrupt
-
         result = el.fit(
             model,
             loader,
@@ -143,7 +144,7 @@ def test_resume_with_a_data_loader_and_data_particles(tmp_path):
             progress=False,
             checkpoint=folder / "run.pt",
             resume=folder / "run.pt" if resume else None,
-            callbacks=[interrupt],
+            callbacks=[interrupt_after(stop_after)],
         )
         return model, result
 
