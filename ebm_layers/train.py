@@ -96,8 +96,9 @@ def fit(
     With no other argument this uses defaults measured by ``benchmarks/digits_rbm.py``: mean
     field for the data phase; 100 persistent chains advanced one sweep per batch for the model
     phase; batches of 10; Adam at learning rate 0.01, decayed linearly towards zero over
-    ``epochs`` (see :func:`default_optimizer`). A fresh model's all-zero visible biases are first
-    set to the log-odds of the data's base rates (:meth:`EnergyModel.init_visible_bias_from`).
+    ``epochs`` (see :func:`default_optimizer`). With tensor data, a fresh model's all-zero
+    visible biases are first set to the log-odds of the data's base rates
+    (:meth:`EnergyModel.init_visible_bias_from`).
 
     Args:
         model: the :class:`EnergyModel`.
