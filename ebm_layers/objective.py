@@ -8,7 +8,7 @@ from dataclasses import dataclass, field
 import torch
 from torch import Tensor, nn
 
-from ._checks import check_batch, check_real
+from ._checks import check_real
 from .enumeration import ExactStatistics
 from .graph import first_coupled_pair
 from .inference import MeanField
@@ -132,7 +132,6 @@ class TwoPhaseObjective(nn.Module):
     def forward(self, v: Tensor, index: Tensor | None = None) -> Tensor:
         """The surrogate loss of batch ``v`` ``(B, n_0)`` (``index`` ``(B,)`` with DataParticles)."""
         model = self.model
-        v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
         with_index = isinstance(self.positive, DataParticles)
         if with_index and index is None:
             raise ValueError("index is required with DataParticles: pass objective(v, index=idx)")
@@ -147,9 +146,9 @@ class TwoPhaseObjective(nn.Module):
         )
         coefficients = self._with_sparsity(difference, data)
         # Linear in the parameters: d loss / d theta = -coefficient, an elementwise backward.
-        loss = -sum((b * c).sum() for b, c in zip(model.biases(), coefficients.means))
+        loss = -sum(_dot(b, c) for b, c in zip(model.biases(), coefficients.means))
         for w, c, (a, b) in zip(model.weights(), coefficients.pairs, model.edges):
-            loss = loss - (w * c).sum() * (0.5 if a == b else 1.0)
+            loss = loss - _dot(w, c) * (0.5 if a == b else 1.0)
         # Any non-finite statistic makes the loss non-finite (NaN and Inf propagate through it).
         if not bool(torch.isfinite(loss)):
             raise FloatingPointError(
@@ -171,7 +170,8 @@ class TwoPhaseObjective(nn.Module):
         Raises ``FloatingPointError`` naming the parameter; ``fit`` also calls it after every epoch.
         """
         for name, parameter in self.model.named_parameters():
-            largest = float(parameter.detach().abs().max())  # NaN propagates through max
+            low, high = parameter.detach().aminmax()  # one pass; NaN propagates through both
+            largest = max(-float(low), float(high))
             if not math.isfinite(largest):
                 raise FloatingPointError(f"parameter {name} holds non-finite values: {_LIKELY_CAUSE}")
             if not name.endswith("bias") and largest > self.max_weight:
@@ -209,6 +209,11 @@ class TwoPhaseObjective(nn.Module):
                 f"sparsity_decay={self.sparsity_decay}"
             )
         return ", ".join(options)
+
+
+def _dot(parameter: Tensor, coefficient: Tensor) -> Tensor:
+    """``sum(parameter * coefficient)`` in one pass without a temporary (0-d)."""
+    return torch.dot(parameter.reshape(-1), coefficient.reshape(-1))
 
 
 _LIKELY_CAUSE = (
