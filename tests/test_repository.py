@@ -94,6 +94,11 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
         ("enumeration.py", ["--visible", "8", "--hidden", "5"], "plain one-shot torch / exact_log_partition"),
         ("meanfield.py", ["--sizes", "12", "8", "6", "--batch", "4"], "GEMM roofline/call"),
         (
+            "training_step.py",
+            ["--sizes", "12", "8", "--batch", "4", "--repeats", "2"],
+            "objective / plain torch",
+        ),
+        (
             "digits_rbm.py",
             ["--seeds", "0", "--epochs", "1", "--reference-steps", "2"],
             "fit defaults: median",
