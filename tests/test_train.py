@@ -296,3 +296,18 @@ def test_resume_refuses_a_file_that_is_not_a_checkpoint(tmp_path):
     with pytest.raises(ValueError, match="not a checkpoint written by fit"):
         el.fit(model, data, resume=tmp_path / "other.pt", progress=False)
     assert_unchanged(model, before)
+
+
+def test_fit_in_float64_with_data_particles_on_tensor_data():
+    g = torch.Generator().manual_seed(0)
+    data = torch.bernoulli(torch.full((30, 8), 0.4, dtype=torch.float64), generator=g)
+    model = el.dbm(8, 5, 3, generator=g, dtype=torch.float64)
+    particles = el.DataParticles(model, num_examples=30, generator=g)
+    objective = el.TwoPhaseObjective(model, particles, el.PersistentSampler(model, 10, generator=g))
+    stored = particles.states_1.clone()
+    result = el.fit(model, data, objective=objective, epochs=2, batch_size=7, progress=False, generator=g)
+    assert model.dtype == torch.float64 and objective.negative.particles[0].dtype == torch.float64
+    assert not torch.equal(stored, particles.states_1)  # every example's chain was advanced
+    assert [r["mean_field_iterations"] for r in result.history] == [None, None]
+    with pytest.raises(ValueError, match="DataParticles hold 30 examples but data has 20"):
+        el.fit(model, data[:20], objective=objective, epochs=1, progress=False)
