@@ -45,7 +45,9 @@ class FitState:
     """What a callback sees: ``callback(state)`` runs after every batch (``event == "batch"``) and
     after every epoch (``event == "epoch"``, once the epoch's checkpoint is written).
 
-    Set ``state.stop = True`` to end training after the current batch or epoch.
+    Set ``state.stop = True`` to end training: after a batch, ``fit`` returns at once (the
+    unfinished epoch gets no history record, scheduler step or checkpoint); after an epoch, it
+    returns once that epoch is recorded and checkpointed.
     """
 
     event: str
@@ -192,7 +194,7 @@ def fit(
                 bar.set_postfix(gap=f"{gaps[-1]:.4f}", refresh=False)
                 state = FitState("batch", epoch, step, objective, optimizer, scheduler, result.history)
                 if _run(callbacks, state):
-                    break
+                    return result  # stopped mid-epoch: no record, scheduler step or checkpoint for it
             objective.check_parameters()
             record = {
                 "epoch": epoch + 1,

@@ -239,6 +239,28 @@ def test_callbacks_see_batches_and_epochs_and_can_stop():
     assert record["mean_field_iterations"] == 1 and record["free_energy_gap"] is None
 
 
+def test_a_callback_can_stop_in_the_middle_of_an_epoch(tmp_path):
+    steps = []
+
+    def stop_at_third_batch(state: el.FitState) -> None:
+        steps.append(state.step)
+        state.stop = state.event == "batch" and state.step == 3
+
+    data = torch.bernoulli(torch.full((20, 6), 0.5), generator=torch.Generator().manual_seed(0))
+    path = tmp_path / "run.pt"
+    result = el.fit(
+        el.rbm(6, 3),
+        data,
+        epochs=5,
+        batch_size=10,
+        callbacks=[stop_at_third_batch],
+        progress=False,
+        checkpoint=path,
+    )
+    assert steps == [1, 2, 2, 3]  # batch, batch, epoch 1 end, then the stopping batch
+    assert len(result.history) == 1 and el.load_checkpoint(path)["epoch"] == 1
+
+
 def test_progress_bar_shows_epochs_and_gaps(capsys):
     data = torch.bernoulli(torch.full((20, 6), 0.5), generator=torch.Generator().manual_seed(0))
     el.fit(el.rbm(6, 3), data, epochs=2, batch_size=10, validation=data[:5], progress=True)
