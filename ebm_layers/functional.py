@@ -24,6 +24,7 @@ __all__ = [
     "energy",
     "layer_logits",
     "marginal_free_energy",
+    "pair_energy",
     "pair_mean",
     "update_layer",
 ]
@@ -114,7 +115,7 @@ def update_layer(
     return torch.stack(columns, dim=1)
 
 
-def _pair_energy(edge: Edge, weight: Tensor, states: States) -> Tensor:
+def pair_energy(edge: Edge, weight: Tensor, states: States) -> Tensor:
     """Energy ``(B,)`` of one coupling: ``-x_a W x_b^T``, or ``-1/2 x W x^T`` when lateral."""
     a, b = edge
     term = ((states[a] @ weight) * states[b]).sum(-1)
@@ -127,7 +128,7 @@ def energy(
     """Energy ``E(x) = -sum_l b_l.x_l - sum_couplings x_a^T W x_b`` of full joint states, ``(B,)``."""
     total = -sum(states[i] @ bias for i, bias in enumerate(biases))
     for edge, weight in zip(edges, weights):
-        total = total + _pair_energy(edge, weight, states)
+        total = total + pair_energy(edge, weight, states)
     return total
 
 
@@ -148,7 +149,7 @@ def marginal_free_energy(
     total = -sum(x @ biases[i] for i, x in given.items())
     for edge, weight in zip(edges, weights):
         if edge[0] in given and edge[1] in given:
-            total = total + _pair_energy(edge, weight, given)
+            total = total + pair_energy(edge, weight, given)
     for k in range(len(biases)):
         if k not in given:
             logits = (

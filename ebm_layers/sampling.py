@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import math
 from collections.abc import Collection, Sequence
-from functools import partial
 
 import torch
 from torch import Tensor, nn
@@ -27,17 +26,26 @@ def gibbs_sweep(
     *,
     clamped: Collection[int] = (),
     keep_probabilities: bool = False,
+    biases: Sequence[Tensor] | None = None,
+    inverse_temperature: float = 1.0,
 ) -> dict[int, Tensor]:
     """Advance ``states`` (one ``(B, n_i)`` per layer, replaced in the list) by one block Gibbs sweep.
 
     The colour classes of ``model.schedule`` are visited in turn; every layer of a class is drawn
     from the states before the class update, ``schedule.unitwise`` layers unit by unit. Layers in
-    ``clamped`` keep their states. Returns the conditional probabilities of the last class's
-    layers without lateral couplings when ``keep_probabilities``, else an empty dict.
+    ``clamped`` keep their states. ``biases`` (one per layer) replace the model's and
+    ``inverse_temperature`` multiplies every logit: the sweep then samples
+    ``exp(-inverse_temperature * E'(x))`` with ``E'`` the model's energy under those biases (the
+    intermediate distributions of annealing). Returns the conditional probabilities of the last
+    class's layers without lateral couplings when ``keep_probabilities``, else an empty dict.
     """
-    biases, weights, edges = model.biases(), model.weights(), model.edges
+    biases = model.biases() if biases is None else biases
+    weights, edges = model.weights(), model.edges
     classes, unitwise = model.schedule.classes, model.schedule.unitwise
-    draw = partial(F.bernoulli, generator=generator)
+
+    def draw(logits: Tensor) -> Tensor:
+        return F.bernoulli(logits if inverse_temperature == 1.0 else inverse_temperature * logits, generator)
+
     probabilities: dict[int, Tensor] = {}
     for c, layers in enumerate(classes):
         last = keep_probabilities and c == len(classes) - 1
@@ -46,9 +54,9 @@ def gibbs_sweep(
             if layer in clamped:
                 continue
             if last and layer not in unitwise:
-                logits = F.layer_logits(states, layer, biases, weights, edges)
+                logits = inverse_temperature * F.layer_logits(states, layer, biases, weights, edges)
                 probabilities[layer] = torch.sigmoid(logits)
-                new[layer] = draw(logits)
+                new[layer] = F.bernoulli(logits, generator)
             else:
                 new[layer] = F.update_layer(
                     states, layer, biases, weights, edges, draw, unitwise=layer in unitwise
