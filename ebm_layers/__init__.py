@@ -6,7 +6,14 @@ from .enumeration import ExactStatistics
 from .graph import UpdateSchedule
 from .inference import MeanField
 from .layers import BinaryLayer
-from .metrics import exact_log_likelihood
+from .metrics import (
+    LogLikelihood,
+    exact_log_likelihood,
+    free_energy_gap,
+    log_likelihood,
+    pseudo_log_likelihood,
+    reconstruction_error,
+)
 from .model import EnergyModel, dbm, rbm
 from .objective import Monitors, TwoPhaseObjective, weight_decay_groups
 from .partition import exact_log_partition
@@ -23,6 +30,7 @@ __all__ = [
     "FitResult",
     "FitState",
     "LateralCoupling",
+    "LogLikelihood",
     "MeanField",
     "Monitors",
     "PersistentSampler",
@@ -33,8 +41,12 @@ __all__ = [
     "exact_log_likelihood",
     "exact_log_partition",
     "fit",
+    "free_energy_gap",
     "load_checkpoint",
+    "log_likelihood",
+    "pseudo_log_likelihood",
     "rbm",
+    "reconstruction_error",
     "save_checkpoint",
     "weight_decay_groups",
 ]

@@ -14,6 +14,7 @@ from torch import Tensor
 
 __all__ = [
     "check_batch",
+    "check_binary_batch",
     "check_count",
     "check_example_index",
     "check_index",
@@ -106,6 +107,18 @@ def check_batch(
     if low < 0.0 or high > 1.0:
         raise ValueError(
             f"{name} must lie in [0, 1] (binary states or Bernoulli means), got values from {low} to {high}"
+        )
+    return x
+
+
+def check_binary_batch(name: str, x: object, width: int, *, dtype: torch.dtype | None = None) -> Tensor:
+    """Check a batch of binary data: :func:`check_batch`, and every value exactly 0 or 1."""
+    x = check_batch(name, x, width, dtype=dtype)
+    other = (x.detach() != 0) & (x.detach() != 1)
+    if bool(other.any()):
+        raise ValueError(
+            f"{name} must be binary (every value 0 or 1), got {int(other.sum())} other values, "
+            f"such as {float(x.detach()[other][0])}"
         )
     return x
 

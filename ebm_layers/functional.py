@@ -20,6 +20,7 @@ from torch.nn.functional import softplus
 
 __all__ = [
     "bernoulli",
+    "bernoulli_log_probability",
     "coupling_input",
     "energy",
     "layer_logits",
@@ -175,3 +176,10 @@ def bernoulli(logits: Tensor, generator: torch.Generator) -> Tensor:
     The one place Gibbs updates draw Bernoulli units, so a faster draw can replace it.
     """
     return torch.bernoulli(torch.sigmoid(logits), generator=generator)
+
+
+def bernoulli_log_probability(x: Tensor, probabilities: Tensor) -> Tensor:
+    """``sum_j log p(x_j)`` per row ``(B,)``, float64, of binary ``x`` under independent units with
+    ``p(x_j = 1) = probabilities`` (both ``(B, n)``)."""
+    x, p = x.to(torch.float64), probabilities.to(torch.float64)
+    return (torch.xlogy(x, p) + torch.xlogy(1.0 - x, 1.0 - p)).sum(-1)

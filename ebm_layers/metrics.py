@@ -1,15 +1,229 @@
-"""Model metrics: how well a model explains data."""
+"""Model metrics: how well a model explains data.
+
+``log_likelihood`` reports log p(v) exactly, as a mean-field lower bound or as an
+importance-sampled estimate, and says which; ``pseudo_log_likelihood`` needs no partition
+function; ``reconstruction_error`` and ``free_energy_gap`` are monitors of training.
+"""
 
 from __future__ import annotations
 
+import copy
+import math
+from dataclasses import dataclass
+
 import torch
 from torch import Tensor
+from torch.nn.functional import softplus
 
+from . import functional
+from ._checks import check_batch, check_binary_batch, check_real, check_size
+from ._random import resolve_generator
 from .enumeration import MAX_STATES
+from .graph import first_coupled_pair, smallest_cover
+from .inference import MeanField
 from .model import EnergyModel
 from .partition import exact_log_partition
 
-__all__ = ["exact_log_likelihood"]
+__all__ = [
+    "LogLikelihood",
+    "exact_log_likelihood",
+    "free_energy_gap",
+    "log_likelihood",
+    "pseudo_log_likelihood",
+    "reconstruction_error",
+]
+
+METHODS = ("auto", "exact", "mean-field", "importance")
+LABELS = {
+    "exact": "exact",
+    "mean-field": "lower bound (mean field)",
+    "importance": "estimate (importance sampling, mean-field proposal)",
+}
+# Mean field for metrics runs to a residual near the dtype's resolution (float64: 1e-6).
+MEAN_FIELD_TOL = 1e-6
+MEAN_FIELD_MAX_ITER = 1000
+# Proposal logits are kept within +-20 (probabilities within about 2e-9 of 0 and 1), so every
+# hidden configuration can be drawn: the importance estimate stays unbiased.
+MAX_PROPOSAL_LOGIT = 20.0
+# Elements of one chunk of sampled or flipped copies; bounds memory (float64: 8 MiB).
+_CHUNK_ELEMENTS = 2**20
+
+
+@dataclass(frozen=True)
+class LogLikelihood:
+    """Per-example log-likelihoods and what kind of number they are.
+
+    Attributes:
+        values: ``(B,)`` float64, detached.
+        method: ``"exact"``, ``"mean-field"`` or ``"importance"``.
+        log_z: the log partition function that was subtracted.
+        log_z_estimated: True when ``log_z`` came from an estimate (an object with a ``log_z``
+            attribute, such as a sampling estimate of the partition function).
+    """
+
+    values: Tensor
+    method: str
+    log_z: float
+    log_z_estimated: bool
+
+    @property
+    def mean(self) -> float:
+        """Average of ``values`` over the examples."""
+        return float(self.values.mean())
+
+    @property
+    def label(self) -> str:
+        """What ``values`` are, in plain words (for reports and plot legends)."""
+        words = LABELS[self.method]
+        if self.log_z_estimated:
+            return f"{words}, but with an estimated log Z, so only an estimate"
+        return words
+
+
+def _check_model(model: object) -> None:
+    if not isinstance(model, EnergyModel):
+        raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
+
+
+def _check_log_z(log_z: object) -> tuple[float, bool]:
+    """``log_z`` as a finite float, and whether it is an estimate (an object with ``.log_z``)."""
+    estimated = hasattr(log_z, "log_z")
+    name, value = ("log_z.log_z", log_z.log_z) if estimated else ("log_z", log_z)
+    if isinstance(value, Tensor):
+        if value.ndim != 0:
+            raise ValueError(f"{name} must be a number or a 0-d tensor, got shape {tuple(value.shape)}")
+        value = value.item()
+    value = check_real(name, value)
+    if not math.isfinite(value):
+        raise ValueError(f"{name} must be finite, got {value}")
+    return value, estimated
+
+
+@torch.no_grad()
+def log_likelihood(
+    model: EnergyModel,
+    v: Tensor,
+    log_z: float | Tensor | object,
+    *,
+    method: str = "auto",
+    num_samples: int = 100,
+    generator: torch.Generator | None = None,
+) -> LogLikelihood:
+    r"""Per-example ``log p(v)``: exact, a mean-field lower bound, or an importance-sampled estimate.
+
+    - ``"exact"``: ``-F(v) - log Z``, for models with a closed-form free energy (no two
+      non-visible units coupled); ``ValueError`` otherwise.
+    - ``"mean-field"``: the variational bound
+      :math:`\log p(v) \ge -E(v, \mu) + H(q) - \log Z` with ``q`` the factorised posterior of
+      mean-field marginals ``mu`` (the energy is multilinear, so ``E`` at the marginals is the
+      expected energy under ``q``; ``H`` sums the Bernoulli entropies of the hidden units).
+    - ``"importance"``: ``logmeanexp_i [-F(v, h_i) - log q(h_i)] - log Z`` over ``num_samples``
+      draws ``h_i`` from ``q``. Only the hidden layers needed to make the rest summable are
+      drawn (the fewest units); the others are summed out in closed form, so an RBM needs no
+      draw and gets the exact value. ``exp`` of it is unbiased for ``p(v)``, so in expectation it
+      lies below ``log p(v)`` (Jensen), and usually much closer to it than the bound.
+    - ``"auto"`` (default): ``"exact"`` when the model has a closed-form free energy, else
+      ``"mean-field"``.
+
+    Mean field and sampling run in float64 on a float64 copy of a float32 model; the model
+    itself is not changed. Values are detached; :func:`exact_log_likelihood` is differentiable.
+
+    Args:
+        model: the :class:`EnergyModel`.
+        v: data in [0, 1], the model's dtype.
+        log_z: ``log Z``: a number, a 0-d tensor, or an estimate object with a ``log_z``
+            attribute (then the result is flagged ``log_z_estimated``).
+        method: ``"auto"``, ``"exact"``, ``"mean-field"`` or ``"importance"``.
+        num_samples: draws per example for ``"importance"``.
+        generator: draws of ``"importance"`` (``None``: a private generator seeded from the
+            global RNG); unused by the other methods.
+
+    Shape:
+        - ``v``: ``(B, n_0)``.
+        - Returns a :class:`LogLikelihood` with ``values`` ``(B,)`` float64.
+
+    Examples::
+
+        >>> import ebm_layers as el
+        >>> model = el.dbm(6, 4, 3, generator=torch.Generator().manual_seed(0))
+        >>> result = el.log_likelihood(model, torch.ones(2, 6), el.exact_log_partition(model))
+        >>> result.values.shape, result.label
+        (torch.Size([2]), 'lower bound (mean field)')
+    """
+    _check_model(model)
+    if method not in METHODS:
+        raise ValueError(f"method must be one of {METHODS}, got {method!r}")
+    num_samples = check_size("num_samples", num_samples)
+    v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
+    log_z, estimated = _check_log_z(log_z)
+    if method == "auto":
+        method = "exact" if first_coupled_pair(model.edges, {0}) is None else "mean-field"
+    if method == "exact":
+        log_f = -model.free_energy(v, dtype=torch.float64)
+    else:
+        generator = resolve_generator(generator) if method == "importance" else None
+        work = model if model.dtype == torch.float64 else copy.deepcopy(model).to(torch.float64)
+        marginals = _mean_field(work, v.to(torch.float64))
+        if method == "mean-field":
+            log_f = _mean_field_bound(work, marginals)
+        else:
+            log_f = _importance_estimate(work, marginals, num_samples, generator)
+    return LogLikelihood(log_f - log_z, method, log_z, estimated)
+
+
+def _mean_field(model: EnergyModel, v: Tensor) -> list[Tensor]:
+    """Mean-field marginals of every layer given ``v``, iterated to near the dtype's resolution."""
+    tol = max(MEAN_FIELD_TOL, 100 * torch.finfo(model.dtype).eps)
+    return MeanField(model, tol=tol, max_iter=MEAN_FIELD_MAX_ITER)(v)
+
+
+def _entropy(marginals: Tensor) -> Tensor:
+    """Entropy ``(B,)`` of independent Bernoulli units with means ``marginals`` (0 log 0 = 0)."""
+    return (torch.special.entr(marginals) + torch.special.entr(1 - marginals)).sum(-1)
+
+
+def _mean_field_bound(model: EnergyModel, marginals: list[Tensor]) -> Tensor:
+    """``-E(v, mu) + H(q)`` ``(B,)``: the lower bound on ``-F(v)`` of the factorised ``q``."""
+    energy = functional.energy(marginals, model.biases(), model.weights(), model.edges)
+    return -energy + sum(_entropy(mu) for mu in marginals[1:])
+
+
+def _sampled_layers(model: EnergyModel) -> tuple[int, ...]:
+    """The hidden layers to draw, fewest units first, so that the others sum out given them and v.
+
+    It is the smallest cover of the couplings with layer 0 counted as free (v is always given).
+    """
+    return tuple(i for i in smallest_cover((0, *model.sizes[1:]), model.edges) if i != 0)
+
+
+def _importance_estimate(
+    model: EnergyModel, marginals: list[Tensor], num_samples: int, generator: torch.Generator
+) -> Tensor:
+    """``logmeanexp_i [-F(v, h_i) - log q(h_i)]`` ``(B,)`` with ``h_i`` drawn from the mean-field ``q``."""
+    sampled = _sampled_layers(model)
+    logits = {i: torch.logit(marginals[i]).clamp(-MAX_PROPOSAL_LOGIT, MAX_PROPOSAL_LOGIT) for i in sampled}
+    num_samples = num_samples if sampled else 1  # nothing to draw: every weight is exp(-F(v))
+    v = marginals[0]
+    per_chunk = max(1, _CHUNK_ELEMENTS // (v.shape[0] * sum(model.sizes)))
+    log_weights = [
+        _log_weights(model, v, logits, min(per_chunk, num_samples - start), generator)
+        for start in range(0, num_samples, per_chunk)
+    ]
+    return torch.logsumexp(torch.cat(log_weights, dim=1), dim=1) - math.log(num_samples)
+
+
+def _log_weights(
+    model: EnergyModel, v: Tensor, logits: dict[int, Tensor], count: int, generator: torch.Generator
+) -> Tensor:
+    """``-F(v, h) - log q(h)`` ``(B, count)`` for ``count`` draws ``h`` per example."""
+    given = {0: v.repeat_interleave(count, dim=0)}
+    log_q = 0.0
+    for i, layer_logits in logits.items():
+        layer_logits = layer_logits.repeat_interleave(count, dim=0)
+        given[i] = functional.bernoulli(layer_logits, generator)
+        log_q = log_q + functional.bernoulli_log_probability(given[i], torch.sigmoid(layer_logits))
+    log_f = -functional.marginal_free_energy(given, model.biases(), model.weights(), model.edges)
+    return (log_f - log_q).view(v.shape[0], count)
 
 
 def exact_log_likelihood(model: EnergyModel, v: Tensor, *, max_states: int = MAX_STATES) -> Tensor:
@@ -18,7 +232,140 @@ def exact_log_likelihood(model: EnergyModel, v: Tensor, *, max_states: int = MAX
     For models with a closed-form free energy (no two non-visible units coupled) whose
     partition function can be enumerated; ``ValueError`` otherwise.
     """
-    if not isinstance(model, EnergyModel):
-        raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
+    _check_model(model)
     free_energy = model.free_energy(v, dtype=torch.float64)
     return -free_energy - exact_log_partition(model, max_states=max_states)
+
+
+@torch.no_grad()
+def pseudo_log_likelihood(model: EnergyModel, v: Tensor) -> Tensor:
+    r"""Pseudo-log-likelihood :math:`\sum_i \log p(v_i \mid v_{-i})` of binary data, float64.
+
+    Every visible unit is flipped in turn (not one random unit per example), under the visible
+    marginal ``p(v)``: :math:`\log p(v_i \mid v_{-i}) = -\mathrm{softplus}(F(v) - F(v^{(i)}))`
+    with :math:`v^{(i)}` the data with unit ``i`` flipped. Needs no partition function. Only
+    for models with a closed-form free energy (no two non-visible units coupled; visible
+    lateral couplings are fine), else ``ValueError``. Flipping unit ``i`` moves each hidden
+    input by ``+-W[i, :]``, so the cost is one ``(B, n_0, n_k)`` softplus per hidden layer
+    ``k``, taken in chunks of examples. Detached.
+
+    Args:
+        model: the :class:`EnergyModel`.
+        v: binary data (every value 0 or 1), the model's dtype.
+
+    Shape:
+        - ``v``: ``(B, n_0)``.
+        - Returns ``(B,)`` float64.
+
+    Examples::
+
+        >>> import ebm_layers as el
+        >>> model = el.rbm(5, 3)
+        >>> with torch.no_grad():
+        ...     _ = model.couplings[0].weight.zero_()
+        >>> el.pseudo_log_likelihood(model, torch.ones(2, 5))  # independent fair units: 5 log(1/2)
+        tensor([-3.4657, -3.4657], dtype=torch.float64)
+    """
+    _check_model(model)
+    v = check_binary_batch("v", v, model.sizes[0], dtype=model.dtype)
+    model.check_summable({0})
+    biases = [b.to(torch.float64) for b in model.biases()]
+    weights = [w.to(torch.float64) for w in model.weights()]
+    v = v.to(torch.float64)
+    flips = 1 - 2 * v  # +1 turns a unit on, -1 turns it off
+    lateral = [(edge, w) for edge, w in zip(model.edges, weights) if edge == (0, 0)]
+    # Change of -F(v) = b.v + 1/2 v L v + sum softplus(hidden inputs) when unit i flips: the
+    # visible terms move by flip_i * (b_i + (v L)_i) (L symmetric with zero diagonal) ...
+    visible_input = functional.layer_logits(
+        {0: v}, 0, biases, [w for _, w in lateral], [edge for edge, _ in lateral]
+    )
+    changes = flips * visible_input
+    # ... and each hidden layer (coupled to layer 0 alone) sees its input moved by flip_i * W[i, :].
+    for edge, weight in zip(model.edges, weights):
+        if edge != (0, 0):
+            hidden = edge[1] if edge[0] == 0 else edge[0]
+            _, matrix = functional.coupling_input(edge, weight, hidden)
+            hidden_input = functional.layer_logits({0: v}, hidden, biases, weights, model.edges)
+            changes = changes + _softplus_changes(hidden_input, flips, matrix)
+    return -softplus(changes).sum(-1)
+
+
+def _softplus_changes(inputs: Tensor, flips: Tensor, matrix: Tensor) -> Tensor:
+    """``sum_j softplus(inputs_j + flips_i M_ij) - sum_j softplus(inputs_j)`` ``(B, n_0)``, in chunks.
+
+    ``inputs`` ``(B, n_k)``, ``flips`` ``(B, n_0)``, ``matrix`` ``(n_0, n_k)``.
+    """
+    rows = max(1, _CHUNK_ELEMENTS // matrix.numel())
+    parts = []
+    for start in range(0, inputs.shape[0], rows):
+        base = inputs[start : start + rows, None, :]
+        moved = base + flips[start : start + rows, :, None] * matrix
+        parts.append(softplus(moved).sum(-1) - softplus(base).sum(-1))
+    return torch.cat(parts)
+
+
+@torch.no_grad()
+def reconstruction_error(model: EnergyModel, v: Tensor) -> Tensor:
+    """Squared error between data and its mean-field reconstruction, summed per example.
+
+    The hidden marginals come from mean field with ``v`` clamped; the reconstruction is
+    ``p(v_i = 1 | those marginals)``, ``sigmoid`` of the visible layer's conditional logits
+    (with visible lateral couplings, given the other data units too). A common monitor of
+    training, not a likelihood: it measures how well one pass reproduces the data, not how
+    probable the model finds it.
+
+    Args:
+        model: the :class:`EnergyModel`.
+        v: data in [0, 1], the model's dtype.
+
+    Shape:
+        - ``v``: ``(B, n_0)``.
+        - Returns ``(B,)`` in the model's dtype, detached.
+
+    Examples::
+
+        >>> import ebm_layers as el
+        >>> model = el.rbm(4, 2)
+        >>> with torch.no_grad():
+        ...     _ = model.couplings[0].weight.zero_()
+        >>> el.reconstruction_error(model, torch.ones(1, 4))  # 4 (1 - sigmoid(0))^2
+        tensor([1.])
+    """
+    _check_model(model)
+    v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
+    marginals = _mean_field(model, v)
+    logits = functional.layer_logits(marginals, 0, model.biases(), model.weights(), model.edges)
+    return (v - torch.sigmoid(logits)).square().sum(-1)
+
+
+@torch.no_grad()
+def free_energy_gap(model: EnergyModel, train: Tensor, test: Tensor) -> float:
+    """Mean free energy of ``test`` minus that of ``train``, in float64.
+
+    On held-out data from the training distribution it stays near zero while the model
+    generalises, and grows when the model overfits the training set; no partition function is
+    needed (it cancels). Common practice: "A Practical Guide to Training Restricted Boltzmann
+    Machines" (Hinton, UTML TR 2010-003, 2010), section 6. Only for models with a closed-form
+    free energy, else ``ValueError``.
+
+    Args:
+        model: the :class:`EnergyModel`.
+        train, test: data in [0, 1], the model's dtype.
+
+    Shape:
+        - ``train``: ``(B_train, n_0)``; ``test``: ``(B_test, n_0)``.
+        - Returns a float.
+
+    Examples::
+
+        >>> import ebm_layers as el
+        >>> model = el.rbm(4, 2, generator=torch.Generator().manual_seed(0))
+        >>> el.free_energy_gap(model, torch.ones(3, 4), torch.ones(5, 4))
+        0.0
+    """
+    _check_model(model)
+    check_batch("train", train, model.sizes[0], dtype=model.dtype)
+    check_batch("test", test, model.sizes[0], dtype=model.dtype)
+    model.check_summable({0})
+    train_mean, test_mean = (float(model.free_energy(x, dtype=torch.float64).mean()) for x in (train, test))
+    return test_mean - train_mean

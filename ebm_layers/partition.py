@@ -431,7 +431,7 @@ def reverse_ais_log_likelihood(
                 marginals[i].clamp(PROPOSAL_CLIP, 1.0 - PROPOSAL_CLIP).repeat_interleave(num_chains, 0)
             )
             states[i] = torch.bernoulli(probabilities, generator=generator)
-            log_weights -= _bernoulli_log_probability(states[i], probabilities)
+            log_weights -= F.bernoulli_log_probability(states[i], probabilities)
     terms = path.terms(states)
     log_weights += path.log_f(1.0, terms) - path.log_z_base
     with tqdm(
@@ -444,9 +444,3 @@ def reverse_ais_log_likelihood(
             bar.update()
     per_example = log_weights.view(-1, num_chains)
     return torch.logsumexp(per_example, 1) - math.log(num_chains)
-
-
-def _bernoulli_log_probability(x: Tensor, probabilities: Tensor) -> Tensor:
-    """``sum_j log p(x_j)`` per row, float64, for independent units with ``p(x_j = 1) = probabilities``."""
-    x, p = x.to(torch.float64), probabilities.to(torch.float64)
-    return (torch.xlogy(x, p) + torch.xlogy(1.0 - x, 1.0 - p)).sum(-1)

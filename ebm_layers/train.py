@@ -24,6 +24,7 @@ from ._checks import check_batch, check_count, check_size
 from ._random import resolve_generator
 from .graph import first_coupled_pair
 from .inference import MeanField
+from .metrics import free_energy_gap
 from .model import EnergyModel
 from .objective import TwoPhaseObjective
 from .sampling import DataParticles, PersistentSampler
@@ -315,13 +316,12 @@ def _batches(data, loader, batch_size, shuffling, with_index) -> Iterable[tuple[
             yield batch[0], batch[1] if with_index else None
 
 
-@torch.no_grad()
 def _free_energy_gap(model: EnergyModel, validation: Tensor | None, seen: list[Tensor]) -> float | None:
+    """Held-out minus training mean free energy on as many examples of each (``None`` if undefined)."""
     if validation is None or not seen or first_coupled_pair(model.edges, {0}) is not None:
         return None
     training = torch.cat(seen)[: len(validation)]
-    held_out = validation[: len(training)]
-    return float(model.free_energy(held_out).mean() - model.free_energy(training).mean())
+    return free_energy_gap(model, training, validation[: len(training)])
 
 
 def _is_fresh(model: EnergyModel) -> bool:
