@@ -7,7 +7,10 @@ from .graph import UpdateSchedule
 from .inference import MeanField
 from .layers import BinaryLayer
 from .metrics import (
+    Evaluation,
     LogLikelihood,
+    SplitMetrics,
+    evaluate,
     exact_log_likelihood,
     free_energy_gap,
     log_likelihood,
@@ -16,7 +19,13 @@ from .metrics import (
 )
 from .model import EnergyModel, dbm, rbm
 from .objective import Monitors, TwoPhaseObjective, weight_decay_groups
-from .partition import exact_log_partition
+from .partition import (
+    Estimate,
+    ais_log_partition,
+    annealing_schedule,
+    exact_log_partition,
+    reverse_ais_log_likelihood,
+)
 from .sampling import DataParticles, PersistentSampler
 from .statistics import Statistics
 from .train import FitResult, FitState, fit, load_checkpoint, save_checkpoint
@@ -26,6 +35,8 @@ __all__ = [
     "DataParticles",
     "DenseCoupling",
     "EnergyModel",
+    "Estimate",
+    "Evaluation",
     "ExactStatistics",
     "FitResult",
     "FitState",
@@ -34,10 +45,14 @@ __all__ = [
     "MeanField",
     "Monitors",
     "PersistentSampler",
+    "SplitMetrics",
     "Statistics",
     "TwoPhaseObjective",
     "UpdateSchedule",
+    "ais_log_partition",
+    "annealing_schedule",
     "dbm",
+    "evaluate",
     "exact_log_likelihood",
     "exact_log_partition",
     "fit",
@@ -47,6 +62,7 @@ __all__ = [
     "pseudo_log_likelihood",
     "rbm",
     "reconstruction_error",
+    "reverse_ais_log_likelihood",
     "save_checkpoint",
     "weight_decay_groups",
 ]

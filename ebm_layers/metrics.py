@@ -22,10 +22,13 @@ from .enumeration import MAX_STATES
 from .graph import first_coupled_pair, smallest_cover
 from .inference import MeanField
 from .model import EnergyModel
-from .partition import exact_log_partition
+from .partition import Estimate, ais_log_partition, exact_log_partition, reverse_ais_log_likelihood
 
 __all__ = [
+    "Evaluation",
     "LogLikelihood",
+    "SplitMetrics",
+    "evaluate",
     "exact_log_likelihood",
     "free_energy_gap",
     "log_likelihood",
@@ -369,3 +372,191 @@ def free_energy_gap(model: EnergyModel, train: Tensor, test: Tensor) -> float:
     model.check_summable({0})
     train_mean, test_mean = (float(model.free_energy(x, dtype=torch.float64).mean()) for x in (train, test))
     return test_mean - train_mean
+
+
+# Enumerate log Z exactly in evaluate() up to this many states (about a second); beyond, use AIS.
+EVALUATE_EXACT_STATES = 2**20
+
+
+@dataclass(frozen=True)
+class SplitMetrics:
+    """The metrics of one data set in an :class:`Evaluation` (means over its examples, in nats).
+
+    Attributes:
+        log_likelihood: mean ``log p(v)``: exact with a closed-form free energy, else the
+            mean-field lower bound; ``log_likelihood_label`` says which.
+        log_likelihood_label: what that number is, in plain words.
+        importance_log_likelihood: without a closed-form free energy, the importance-sampled
+            estimate with the mean-field proposal (closer than the bound); else ``None``.
+        conservative_log_likelihood: mean reverse-annealing estimate (low on average), or
+            ``None`` when not computed for this set or not available for the model.
+        pseudo_log_likelihood: mean pseudo-log-likelihood (``None`` without closed-form free
+            energy or for non-binary data).
+        reconstruction_error: mean squared reconstruction error per example.
+    """
+
+    log_likelihood: float
+    log_likelihood_label: str
+    importance_log_likelihood: float | None
+    conservative_log_likelihood: float | None
+    pseudo_log_likelihood: float | None
+    reconstruction_error: float
+
+    @property
+    def best_log_likelihood(self) -> float:
+        """The closest estimate of the mean log-likelihood available: exact, or importance-sampled."""
+        return (
+            self.log_likelihood if self.importance_log_likelihood is None else self.importance_log_likelihood
+        )
+
+
+@dataclass(frozen=True)
+class Evaluation:
+    """How good a model is, in nats: the report of :func:`evaluate`; ``print`` it for a table.
+
+    Attributes:
+        log_z: the log partition function used.
+        log_z_source: ``"exact (enumeration)"``, ``"forward AIS"`` or ``"given"``.
+        estimate: the AIS :class:`~ebm_layers.partition.Estimate` (``None`` unless estimated here).
+        train, test: :class:`SplitMetrics` of the training data and of the held-out data (``None``
+            without it).
+        free_energy_gap: mean free energy of test minus train (``None`` when undefined).
+        warnings: plain-words cautions about the numbers above (printed with the table).
+    """
+
+    log_z: float
+    log_z_source: str
+    estimate: Estimate | None
+    train: SplitMetrics
+    test: SplitMetrics | None
+    free_energy_gap: float | None
+    warnings: tuple[str, ...]
+
+    def __str__(self) -> str:
+        splits = [("train", self.train)] + ([("test", self.test)] if self.test is not None else [])
+        detail = f", bracket [{self.estimate.lower:.3f}, {self.estimate.upper:.3f}]" if self.estimate else ""
+        lines = [f"log Z = {self.log_z:.3f} ({self.log_z_source}{detail})"]
+        lines.append(f"{'nats per example':<34}" + "".join(f"{name:>10}" for name, _ in splits))
+        rows = [
+            ("log-likelihood (1)", "log_likelihood"),
+            ("importance-sampled estimate (2)", "importance_log_likelihood"),
+            ("conservative, reverse AIS (3)", "conservative_log_likelihood"),
+            ("pseudo-log-likelihood", "pseudo_log_likelihood"),
+            ("reconstruction error", "reconstruction_error"),
+        ]
+        for title, attribute in rows:
+            values = [getattr(split, attribute) for _, split in splits]
+            if any(value is not None for value in values):
+                lines.append(
+                    f"{title:<34}" + "".join(f"{'-':>10}" if x is None else f"{x:>10.3f}" for x in values)
+                )
+        for name, split in splits:
+            if split.conservative_log_likelihood is not None:
+                gap = split.best_log_likelihood - split.conservative_log_likelihood
+                which = "(1)" if split.importance_log_likelihood is None else "(2)"
+                lines.append(f"gap {which} - (3) on {name}: {gap:.3f}")
+        if self.free_energy_gap is not None:
+            lines.append(f"free energy gap, test - train: {self.free_energy_gap:.3f}")
+        lines.append(f"(1) {self.train.log_likelihood_label}")
+        if self.train.importance_log_likelihood is not None:
+            lines.append("(2) estimate by importance sampling with the mean-field posterior as proposal")
+        if any(split.conservative_log_likelihood is not None for _, split in splits):
+            lines.append("(3) reverse annealing: a stochastic estimate that is low on average")
+        lines.extend(f"WARNING: {text}" for text in self.warnings)
+        return "\n".join(lines)
+
+
+def evaluate(
+    model: EnergyModel,
+    data: Tensor,
+    *,
+    test: Tensor | None = None,
+    log_z: float | Tensor | Estimate | None = None,
+    num_chains: int = 100,
+    num_betas: int = 10_000,
+    reverse: bool = True,
+    generator: torch.Generator | None = None,
+    progress: bool = True,
+) -> Evaluation:
+    """Every metric of ``model`` on its training ``data`` and held-out ``test`` data, in one report.
+
+    ``log Z`` is exact when at most 2^20 states need enumerating, else estimated by forward AIS
+    (:func:`~ebm_layers.partition.ais_log_partition` with ``data`` for the base rates,
+    ``num_chains``, ``num_betas``), unless given as ``log_z``. The log-likelihood is exact where
+    the model has a closed-form free energy, else the mean-field lower bound; with an estimated
+    ``log Z`` it is only an estimate, optimistic on average (forward AIS underestimates ``log Z``
+    on average). Without a closed-form free energy, an importance-sampled estimate (100 draws
+    from the mean-field posterior per example) is reported too. With ``reverse`` (and a model it
+    applies to), reverse annealing gives the conservative counterpart on ``test`` (or on ``data``
+    without test data), so the truth lies, on average, between two stochastic estimates; the
+    report shows both and their gap. Printing the result gives an aligned table with warnings.
+
+    Args:
+        model: the :class:`EnergyModel`.
+        data: ``(N, n_0)`` training data.
+        test: ``(M, n_0)`` held-out data.
+        log_z: a known ``log Z`` (number, 0-d tensor or AIS estimate) to use instead.
+        num_chains, num_betas: AIS settings (reverse annealing uses ``num_betas`` too).
+        reverse: compute the conservative reverse-annealing estimate.
+        generator: the ``torch.Generator`` of every draw.
+        progress: show tqdm bars for the annealing runs.
+
+    Returns:
+        an :class:`Evaluation`.
+    """
+    _check_model(model)
+    data = check_batch("data", data, model.sizes[0], dtype=model.dtype)
+    if test is not None:
+        test = check_batch("test", test, model.sizes[0], dtype=model.dtype)
+    generator = resolve_generator(generator)
+    estimate, source = None, "given"
+    if log_z is None:
+        if (
+            2 ** sum(model.sizes[i] for i in smallest_cover(model.sizes, model.edges))
+            <= EVALUATE_EXACT_STATES
+        ):
+            log_z, source = float(exact_log_partition(model)), "exact (enumeration)"
+        else:
+            estimate = ais_log_partition(
+                model,
+                num_chains=num_chains,
+                num_betas=num_betas,
+                data=data,
+                generator=generator,
+                progress=progress,
+            )
+            log_z, source = estimate, "forward AIS"
+    cautions = [] if estimate is None or estimate.warning is None else [estimate.warning]
+    closed_form = first_coupled_pair(model.edges, {0}) is None
+    reversible = len(model.schedule.classes) == 2 and not model.schedule.unitwise
+    target = data if test is None else test
+
+    def metrics_of(x: Tensor) -> SplitMetrics:
+        likelihood = log_likelihood(model, x, log_z)
+        conservative = None
+        if reverse and reversible and x is target:
+            conservative = float(
+                reverse_ais_log_likelihood(
+                    model, x, num_betas=num_betas, data=data, generator=generator, progress=progress
+                ).mean()
+            )
+        binary = bool(((x == 0) | (x == 1)).all())
+        importance = None
+        if not closed_form:
+            importance = log_likelihood(model, x, log_z, method="importance", generator=generator).mean
+        return SplitMetrics(
+            log_likelihood=likelihood.mean,
+            log_likelihood_label=likelihood.label,
+            importance_log_likelihood=importance,
+            conservative_log_likelihood=conservative,
+            pseudo_log_likelihood=float(pseudo_log_likelihood(model, x).mean())
+            if closed_form and binary
+            else None,
+            reconstruction_error=float(reconstruction_error(model, x).mean()),
+        )
+
+    train_metrics = metrics_of(data)
+    test_metrics = None if test is None else metrics_of(test)
+    gap = free_energy_gap(model, data, test) if closed_form and test is not None else None
+    log_z_value = log_z if isinstance(log_z, float) else _check_log_z(log_z)[0]
+    return Evaluation(log_z_value, source, estimate, train_metrics, test_metrics, gap, tuple(cautions))
