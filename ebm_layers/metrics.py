@@ -466,6 +466,7 @@ class Evaluation:
         return "\n".join(lines)
 
 
+@torch.no_grad()
 def evaluate(
     model: EnergyModel,
     data: Tensor,
@@ -510,22 +511,21 @@ def evaluate(
         test = check_batch("test", test, model.sizes[0], dtype=model.dtype)
     generator = resolve_generator(generator)
     estimate, source = None, "given"
-    if log_z is None:
-        if (
-            2 ** sum(model.sizes[i] for i in smallest_cover(model.sizes, model.edges))
-            <= EVALUATE_EXACT_STATES
-        ):
-            log_z, source = float(exact_log_partition(model)), "exact (enumeration)"
-        else:
-            estimate = ais_log_partition(
-                model,
-                num_chains=num_chains,
-                num_betas=num_betas,
-                data=data,
-                generator=generator,
-                progress=progress,
-            )
-            log_z, source = estimate, "forward AIS"
+    enumerated_states = 2 ** sum(model.sizes[i] for i in smallest_cover(model.sizes, model.edges))
+    if log_z is not None:
+        _check_log_z(log_z)
+    elif enumerated_states <= EVALUATE_EXACT_STATES:
+        log_z, source = float(exact_log_partition(model)), "exact (enumeration)"
+    else:
+        estimate = ais_log_partition(
+            model,
+            num_chains=num_chains,
+            num_betas=num_betas,
+            data=data,
+            generator=generator,
+            progress=progress,
+        )
+        log_z, source = estimate, "forward AIS"
     cautions = [] if estimate is None or estimate.warning is None else [estimate.warning]
     closed_form = first_coupled_pair(model.edges, {0}) is None
     reversible = len(model.schedule.classes) == 2 and not model.schedule.unitwise
