@@ -345,3 +345,22 @@ def test_reverse_refuses_models_it_cannot_reverse():
     lateral = randomize(build("semi_restricted", (4, 2)), seed=0, scale=1.0)
     with pytest.raises(ValueError, match="lateral"):
         reverse_ais_log_likelihood(lateral, binary((2, 4), seed=0), base="uniform", progress=False)
+
+
+@pytest.mark.parametrize(
+    "options, error, message",
+    [
+        ({"v": binary((3, 4), seed=0)}, ValueError, "5 columns"),
+        ({"v": binary((3, 5), seed=0) + 0.5}, ValueError, r"\[0, 1\]"),
+        ({"v": binary((3, 5), seed=0), "num_chains": 0}, ValueError, "num_chains"),
+        ({"v": binary((3, 5), seed=0), "num_betas": 1}, ValueError, "num_betas"),
+        ({"v": binary((3, 5), seed=0), "base": "flat"}, ValueError, "base must be"),
+    ],
+)
+def test_bad_reverse_arguments(options, error, message):
+    model = randomize(build("rbm", (5, 3)), seed=0, scale=1.0)
+    before = snapshot(model)
+    options.setdefault("base", "uniform")
+    with pytest.raises(error, match=message):
+        reverse_ais_log_likelihood(model, progress=False, **options)
+    assert_unchanged(model, before)
