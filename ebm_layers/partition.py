@@ -289,7 +289,7 @@ def _base_biases(model: EnergyModel, data: Tensor | None, base: str) -> list[Ten
         warnings.warn(
             f"{outside} visible units have base rates outside [{RATE_CLIP}, {1 - RATE_CLIP}] in data "
             "(constant units); clipped for the base model",
-            stacklevel=3,
+            stacklevel=4,  # the caller of ais_log_partition (behind its no_grad wrapper)
         )
     biases[0] = torch.logit(clipped).to(biases[0].dtype)
     return biases
