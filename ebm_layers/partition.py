@@ -303,10 +303,14 @@ def _check_schedule(schedule, num_betas: int) -> Tensor:
         raise ValueError(
             f"schedule must be a 1-D sequence of at least 2 betas, got shape {tuple(betas.shape)}"
         )
-    if betas[0] != 0.0 or betas[-1] != 1.0 or not bool((betas[1:] > betas[:-1]).all()):
+    if betas[0] != 0.0 or betas[-1] != 1.0:
+        raise ValueError(f"schedule must run from 0 to 1, got {betas[0].item()} ... {betas[-1].item()}")
+    steps = betas[1:] - betas[:-1]
+    if not bool((steps > 0).all()):
+        k = int(torch.nonzero(steps <= 0)[0])
         raise ValueError(
-            f"schedule must increase strictly from 0 to 1, got {betas[0].item()} ... {betas[-1].item()}"
-            + ("" if bool((betas[1:] > betas[:-1]).all()) else " (not increasing)")
+            f"schedule must increase strictly, got {betas[k].item()} then {betas[k + 1].item()} "
+            f"at index {k + 1}"
         )
     return betas
 

@@ -319,7 +319,7 @@ def _cases():
     return [
         ({"num_chains": 0, "data": data}, ValueError, "num_chains"),
         ({"num_betas": 1, "data": data}, ValueError, "num_betas"),
-        ({"schedule": [0.0, 0.5, 0.4, 1.0], "data": data}, ValueError, "not increasing"),
+        ({"schedule": [0.0, 0.5, 0.4, 1.0], "data": data}, ValueError, "increase strictly, got 0.5 then 0.4"),
         ({"schedule": [0.1, 0.5, 1.0], "data": data}, ValueError, "from 0 to 1"),
         ({"schedule": [0.0, 0.5, 0.9], "data": data}, ValueError, "from 0 to 1"),
         ({"schedule": "cubic", "data": data}, ValueError, "kind"),
