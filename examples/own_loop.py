@@ -3,7 +3,9 @@
 The data are invented on/off flags of 16 sensors on a machine that runs in one of four modes;
 each mode switches on its own group of sensors, with a few flags flipped at random.
 
-    python examples/own_loop.py [--epochs 30] [--seed 0] [--checkpoint out/own_loop.pt]
+    python examples/own_loop.py [--epochs 30] [--seed 0] [--checkpoint out/own_loop.pt] [--resume]
+
+With ``--resume`` it continues from the checkpoint, exactly as if it had not stopped.
 """
 
 from __future__ import annotations
@@ -33,6 +35,7 @@ def main() -> None:
     parser.add_argument("--epochs", type=int, default=30)
     parser.add_argument("--seed", type=int, default=0)
     parser.add_argument("--checkpoint", type=Path, default=Path("out/own_loop.pt"))
+    parser.add_argument("--resume", action="store_true", help="continue from --checkpoint")
     args = parser.parse_args()
     g = torch.Generator().manual_seed(args.seed)
     train, held_out = sensor_flags(800, g), sensor_flags(200, g)
@@ -43,11 +46,19 @@ def main() -> None:
     objective = el.TwoPhaseObjective(model, el.MeanField(model), sampler)
     # Weight decay on the weights only; torch's own weight_decay would decay the biases too.
     optimizer = torch.optim.Adam(el.weight_decay_groups(model, 1e-4), lr=0.01)
-    scheduler = torch.optim.lr_scheduler.LinearLR(optimizer, 1.0, 0.0, total_iters=args.epochs)
+    # A decay that does not depend on --epochs, so that a run extended with --resume continues it.
+    scheduler = torch.optim.lr_scheduler.ExponentialLR(optimizer, gamma=0.9)
 
-    args.checkpoint.parent.mkdir(parents=True, exist_ok=True)
+    start = 0
+    if args.resume:
+        state = torch.load(args.checkpoint, weights_only=True)
+        objective.load_state_dict(state["objective"])
+        optimizer.load_state_dict(state["optimizer"])
+        scheduler.load_state_dict(state["scheduler"])
+        g.set_state(state["generator"])
+        start = state["epoch"]
     print(f"{'epoch':>5} {'lr':>8} {'stat gap':>9} {'F(data)':>8} {'F(chains)':>9} {'test log p':>10}")
-    for epoch in range(args.epochs):
+    for epoch in range(start, args.epochs):
         order = torch.randperm(len(train), generator=g)
         for start in range(0, len(train), 10):
             loss = objective(train[order[start : start + 10]])  # a surrogate: its value means nothing
@@ -63,8 +74,7 @@ def main() -> None:
             f"{last.data_free_energy:>8.2f} {last.particle_free_energy:>9.2f} {test_log_p:>10.3f}"
         )
         scheduler.step()
-        # Atomic (temporary file, then rename), like fit's checkpoints; load with torch.load and
-        # the load_state_dict methods to continue.
+        # Atomic (temporary file, then rename), like fit's checkpoints; --resume loads it back.
         el.save_checkpoint(
             {
                 "epoch": epoch + 1,

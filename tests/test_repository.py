@@ -60,22 +60,24 @@ def test_quickstart_runs_and_prints_exact_log_partition():
     assert "own loop, 20 epochs" in result.stdout and "fit, 20 epochs" in result.stdout
 
 
-def test_own_loop_example_runs(tmp_path):
+def run_own_loop(*arguments: str) -> list[str]:
     result = subprocess.run(
-        [
-            sys.executable,
-            str(ROOT / "examples" / "own_loop.py"),
-            "--epochs",
-            "2",
-            "--checkpoint",
-            str(tmp_path / "c.pt"),
-        ],
+        [sys.executable, str(ROOT / "examples" / "own_loop.py"), *arguments],
         capture_output=True,
         text=True,
         timeout=120,
     )
     assert result.returncode == 0, result.stderr
-    assert "test log p" in result.stdout and (tmp_path / "c.pt").exists()
+    return result.stdout.splitlines()
+
+
+def test_own_loop_example_runs_and_resumes_identically(tmp_path):
+    whole = run_own_loop("--epochs", "3", "--checkpoint", str(tmp_path / "whole.pt"))
+    assert "test log p" in whole[0] and (tmp_path / "whole.pt").exists()
+    run_own_loop("--epochs", "2", "--checkpoint", str(tmp_path / "part.pt"))
+    resumed = run_own_loop("--epochs", "3", "--checkpoint", str(tmp_path / "part.pt"), "--resume")
+    assert resumed[1] == whole[3]  # epoch 3 of the resumed run is epoch 3 of the whole run
+    assert resumed[2:-1] == whole[4:-1]  # and so are the samples drawn after training
 
 
 def test_readme_python_examples_run(tmp_path, monkeypatch):
