@@ -11,13 +11,14 @@ import copy
 import math
 import os
 import time
+import warnings
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import torch
 from torch import Tensor
-from torch.utils.data import DataLoader
+from torch.utils.data import DataLoader, RandomSampler
 from tqdm.auto import tqdm
 
 from ._checks import check_batch, check_count, check_size
@@ -164,6 +165,13 @@ def fit(
             f"the DataParticles hold {objective.positive.num_examples} examples but data has {data.shape[0]}"
         )
     shuffling = loader.generator if loader is not None else _child_generator(generator)
+    if loader is not None and shuffling is None and (checkpoint is not None or resume is not None):
+        if isinstance(loader.sampler, RandomSampler) and loader.sampler.generator is None:
+            warnings.warn(
+                "the DataLoader shuffles without a generator of its own, so a resumed run will not see "
+                "the batches of an uninterrupted one; pass DataLoader(..., generator=torch.Generator())",
+                stacklevel=2,
+            )
 
     result = FitResult(objective, optimizer, scheduler)
     start = 0

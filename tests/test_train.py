@@ -18,6 +18,7 @@ import subprocess
 import sys
 import textwrap
 import time
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -333,3 +334,14 @@ def test_fit_in_float64_with_data_particles_on_tensor_data():
     assert [r["mean_field_iterations"] for r in result.history] == [None, None]
     with pytest.raises(ValueError, match="DataParticles hold 30 examples but data has 20"):
         el.fit(model, data[:20], objective=objective, epochs=1, progress=False)
+
+
+def test_checkpointing_with_an_unseeded_shuffling_loader_warns(tmp_path):
+    data = torch.bernoulli(torch.full((20, 6), 0.5), generator=torch.Generator().manual_seed(0))
+    loader = DataLoader(TensorDataset(data), batch_size=5, shuffle=True)
+    with pytest.warns(UserWarning, match="shuffles without a generator"):
+        el.fit(el.rbm(6, 3), loader, epochs=1, checkpoint=tmp_path / "run.pt", progress=False)
+    seeded = DataLoader(TensorDataset(data), batch_size=5, shuffle=True, generator=torch.Generator())
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        el.fit(el.rbm(6, 3), seeded, epochs=1, checkpoint=tmp_path / "run.pt", progress=False)
