@@ -50,6 +50,14 @@ class FitState:
     Set ``state.stop = True`` to end training: after a batch, ``fit`` returns at once (the
     unfinished epoch gets no history record, scheduler step or checkpoint); after an epoch, it
     returns once that epoch is recorded and checkpointed.
+
+    Attributes:
+        event: ``"batch"`` or ``"epoch"``.
+        epoch: index of the current epoch, from 0 (``history`` records count from 1).
+        step: batches trained so far, over all epochs.
+        objective, optimizer, scheduler: what ``fit`` trains with; ``objective.last`` holds the
+            monitors of the latest batch.
+        history: the records of the finished epochs (see :class:`FitResult`).
     """
 
     event: str
@@ -287,7 +295,7 @@ def _resume(path, result: FitResult, shuffling: torch.Generator | None) -> int:
             f"resume={str(path)!r} was written with a different scheduler setting than this call"
         )
     # load_state_dict may fail half-way (a checkpoint of another model): put everything back then.
-    saved = [_copy(result.objective.state_dict()), _copy(result.optimizer.state_dict())]
+    saved = [copy.deepcopy(result.objective.state_dict()), copy.deepcopy(result.optimizer.state_dict())]
     try:
         result.objective.load_state_dict(state["objective"])
         result.optimizer.load_state_dict(state["optimizer"])
@@ -301,10 +309,6 @@ def _resume(path, result: FitResult, shuffling: torch.Generator | None) -> int:
         shuffling.set_state(state["shuffling"])
     result.history.extend(state["history"])
     return state["epoch"]
-
-
-def _copy(state: dict) -> dict:
-    return copy.deepcopy(state)
 
 
 def _batches(data, loader, batch_size, shuffling, with_index) -> Iterable[tuple[Tensor, Tensor | None]]:
