@@ -31,7 +31,9 @@ def test_exact_report_of_a_small_rbm():
     assert report.test.log_likelihood_label == "exact"
     assert report.test.importance_log_likelihood is None
     assert report.train.conservative_log_likelihood is None  # reverse annealing runs on the test set
+    assert report.test.conservative_examples == 20
     assert abs(report.test.conservative_log_likelihood - exact_test) < 0.1  # measured: 0.01
+    assert report.test.conservative_gap == pytest.approx(exact_test - report.test.conservative_log_likelihood)
     assert report.test.pseudo_log_likelihood == pytest.approx(
         float(el.pseudo_log_likelihood(model, test).mean())
     )
@@ -79,6 +81,23 @@ def test_report_of_a_deep_chain_has_the_importance_estimate():
     assert "(2) estimate by importance sampling" in str(report)
 
 
+def test_reverse_annealing_runs_on_a_bounded_subset_and_the_gap_on_the_same_examples():
+    model = randomize(build("rbm", (6, 3)), seed=0, scale=1.0)
+    train, test = binary((40, 6), seed=1), binary((30, 6), seed=2)
+    g = torch.Generator().manual_seed(4)
+    report = el.evaluate(
+        model, train, test=test, num_betas=100, reverse_examples=7, progress=False, generator=g
+    )
+    assert report.test.conservative_examples == 7
+    # The subset is the first draw of the generator after evaluate's own seeding: recompute it.
+    subset = torch.randperm(30, generator=torch.Generator().manual_seed(4))[:7]
+    exact_subset = el.exact_log_likelihood(model, test[subset]).mean().item()
+    assert report.test.conservative_gap == pytest.approx(
+        exact_subset - report.test.conservative_log_likelihood
+    )
+    assert "(3) reverse annealing on 7 test examples" in str(report)
+
+
 def test_given_log_z_is_used():
     model = randomize(build("rbm", (4, 2)), seed=9, scale=1.0)
     data = binary((10, 4), seed=10)
@@ -93,6 +112,7 @@ def test_given_log_z_is_used():
         ({"data": binary((5, 4), seed=0), "test": binary((5, 4), seed=0) * float("nan")}, ValueError, "test"),
         ({"data": binary((5, 4), seed=0), "log_z": float("inf")}, ValueError, "log_z"),
         ({"data": "data"}, TypeError, "data"),
+        ({"data": binary((5, 4), seed=0), "reverse_examples": 0}, ValueError, "reverse_examples"),
     ],
 )
 def test_bad_evaluate_arguments(options, error, message):
