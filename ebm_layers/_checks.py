@@ -18,6 +18,7 @@ __all__ = [
     "check_count",
     "check_example_index",
     "check_index",
+    "check_model",
     "check_real",
     "check_size",
     "check_states",
@@ -67,6 +68,14 @@ def check_index(name: str, value: object, count: int | None = None) -> int:
             else f"{name}={value} but there are no layers"
         )
     return value
+
+
+def check_model(model: object) -> None:
+    """Raise ``TypeError`` unless ``model`` is an :class:`~ebm_layers.model.EnergyModel`."""
+    from .model import EnergyModel  # imported here: the model module itself uses these checks
+
+    if not isinstance(model, EnergyModel):
+        raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
 
 
 def check_batch(

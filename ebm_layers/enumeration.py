@@ -14,7 +14,7 @@ import torch
 from torch import Tensor, nn
 
 from . import functional as F
-from ._checks import check_size
+from ._checks import check_model, check_size
 from .graph import smallest_cover
 from .model import EnergyModel
 from .statistics import Statistics
@@ -110,8 +110,7 @@ class ExactStatistics(nn.Module):
 
     def __init__(self, model: EnergyModel, *, max_states: int = MAX_STATES) -> None:
         super().__init__()
-        if not isinstance(model, EnergyModel):
-            raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
+        check_model(model)
         enumeration_cover(model, max_states)  # refuse now rather than at the first statistics()
         self.model = model
         self.max_states = max_states

@@ -11,7 +11,7 @@ import torch
 from torch import Tensor, nn
 
 from . import functional as F
-from ._checks import check_batch, check_index, check_real, check_size
+from ._checks import check_batch, check_index, check_model, check_real, check_size
 from .graph import UpdateSchedule
 from .model import EnergyModel
 from .statistics import Statistics
@@ -104,8 +104,7 @@ class MeanField(nn.Module):
         init: float | str = 0.5,
     ) -> None:
         super().__init__()
-        if not isinstance(model, EnergyModel):
-            raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
+        check_model(model)
         if update not in UPDATES:
             raise ValueError(f"update must be one of {UPDATES}, got {update!r}")
         if backward not in BACKWARDS:

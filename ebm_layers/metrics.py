@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import copy
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import torch
@@ -16,13 +17,19 @@ from torch import Tensor
 from torch.nn.functional import softplus
 
 from . import functional
-from ._checks import check_batch, check_binary_batch, check_real, check_size
+from ._checks import check_batch, check_binary_batch, check_model, check_real, check_size
 from ._random import resolve_generator
 from .enumeration import MAX_STATES
-from .graph import first_coupled_pair, smallest_cover
+from .graph import smallest_cover
 from .inference import MeanField
 from .model import EnergyModel
-from .partition import Estimate, ais_log_partition, exact_log_partition, reverse_ais_log_likelihood
+from .partition import (
+    Estimate,
+    ais_log_partition,
+    can_reverse_anneal,
+    exact_log_partition,
+    reverse_ais_log_likelihood,
+)
 
 __all__ = [
     "Evaluation",
@@ -81,11 +88,6 @@ class LogLikelihood:
         if self.log_z_estimated:
             return f"{words}, but with an estimated log Z, so only an estimate"
         return words
-
-
-def _check_model(model: object) -> None:
-    if not isinstance(model, EnergyModel):
-        raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
 
 
 def _check_log_z(log_z: object) -> tuple[float, bool]:
@@ -153,25 +155,35 @@ def log_likelihood(
         >>> result.values.shape, result.label
         (torch.Size([2]), 'lower bound (mean field)')
     """
-    _check_model(model)
+    check_model(model)
     if method not in METHODS:
         raise ValueError(f"method must be one of {METHODS}, got {method!r}")
     num_samples = check_size("num_samples", num_samples)
     v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
     log_z, estimated = _check_log_z(log_z)
     if method == "auto":
-        method = "exact" if first_coupled_pair(model.edges, {0}) is None else "mean-field"
+        method = "exact" if model.has_free_energy else "mean-field"
     if method == "exact":
         log_f = -model.free_energy(v, dtype=torch.float64)
     else:
         generator = resolve_generator(generator) if method == "importance" else None
-        work = model if model.dtype == torch.float64 else copy.deepcopy(model).to(torch.float64)
-        marginals = _mean_field(work, v.to(torch.float64))
-        if method == "mean-field":
-            log_f = _mean_field_bound(work, marginals)
-        else:
-            log_f = _importance_estimate(work, marginals, num_samples, generator)
+        (log_f,) = _variational_log_f(model, v, (method,), num_samples, generator)
     return LogLikelihood(log_f - log_z, method, log_z, estimated)
+
+
+def _variational_log_f(
+    model: EnergyModel, v: Tensor, methods: Sequence[str], num_samples: int, generator: torch.Generator | None
+) -> list[Tensor]:
+    """``(B,)`` float64 estimates of ``-F(v)`` for each of ``methods`` (``"mean-field"``,
+    ``"importance"``) from one mean-field run on a float64 copy of the model."""
+    work = model if model.dtype == torch.float64 else copy.deepcopy(model).to(torch.float64)
+    marginals = _mean_field(work, v.to(torch.float64))
+    return [
+        _mean_field_bound(work, marginals)
+        if method == "mean-field"
+        else _importance_estimate(work, marginals, num_samples, generator)
+        for method in methods
+    ]
 
 
 def _mean_field(model: EnergyModel, v: Tensor) -> list[Tensor]:
@@ -235,7 +247,7 @@ def exact_log_likelihood(model: EnergyModel, v: Tensor, *, max_states: int = MAX
     For models with a closed-form free energy (no two non-visible units coupled) whose
     partition function can be enumerated; ``ValueError`` otherwise.
     """
-    _check_model(model)
+    check_model(model)
     free_energy = model.free_energy(v, dtype=torch.float64)
     return -free_energy - exact_log_partition(model, max_states=max_states)
 
@@ -269,7 +281,7 @@ def pseudo_log_likelihood(model: EnergyModel, v: Tensor) -> Tensor:
         >>> el.pseudo_log_likelihood(model, torch.ones(2, 5))  # independent fair units: 5 log(1/2)
         tensor([-3.4657, -3.4657], dtype=torch.float64)
     """
-    _check_model(model)
+    check_model(model)
     v = check_binary_batch("v", v, model.sizes[0], dtype=model.dtype)
     model.check_summable({0})
     biases = [b.to(torch.float64) for b in model.biases()]
@@ -334,7 +346,7 @@ def reconstruction_error(model: EnergyModel, v: Tensor) -> Tensor:
         >>> el.reconstruction_error(model, torch.ones(1, 4))  # 4 (1 - sigmoid(0))^2
         tensor([1.])
     """
-    _check_model(model)
+    check_model(model)
     v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
     marginals = _mean_field(model, v)
     logits = functional.layer_logits(marginals, 0, model.biases(), model.weights(), model.edges)
@@ -366,7 +378,7 @@ def free_energy_gap(model: EnergyModel, train: Tensor, test: Tensor) -> float:
         >>> el.free_energy_gap(model, torch.ones(3, 4), torch.ones(5, 4))
         0.0
     """
-    _check_model(model)
+    check_model(model)
     check_batch("train", train, model.sizes[0], dtype=model.dtype)
     check_batch("test", test, model.sizes[0], dtype=model.dtype)
     model.check_summable({0})
@@ -515,7 +527,7 @@ def evaluate(
     Returns:
         an :class:`Evaluation`.
     """
-    _check_model(model)
+    check_model(model)
     data = check_batch("data", data, model.sizes[0], dtype=model.dtype)
     if test is not None:
         test = check_batch("test", test, model.sizes[0], dtype=model.dtype)
@@ -523,11 +535,9 @@ def evaluate(
     generator = resolve_generator(generator)
     estimate, source = None, "given"
     enumerated_states = 2 ** sum(model.sizes[i] for i in smallest_cover(model.sizes, model.edges))
-    if log_z is not None:
-        _check_log_z(log_z)
-    elif enumerated_states <= EVALUATE_EXACT_STATES:
+    if log_z is None and enumerated_states <= EVALUATE_EXACT_STATES:
         log_z, source = float(exact_log_partition(model)), "exact (enumeration)"
-    else:
+    elif log_z is None:
         estimate = ais_log_partition(
             model,
             num_chains=num_chains,
@@ -537,16 +547,19 @@ def evaluate(
             progress=progress,
         )
         log_z, source = estimate, "forward AIS"
+    log_z_value, estimated = _check_log_z(log_z)
     cautions = [] if estimate is None or estimate.warning is None else [estimate.warning]
-    closed_form = first_coupled_pair(model.edges, {0}) is None
-    reversible = len(model.schedule.classes) == 2 and not model.schedule.unitwise
+    closed_form = model.has_free_energy
+    reversible = can_reverse_anneal(model)
     target = data if test is None else test
 
     def metrics_of(x: Tensor) -> SplitMetrics:
-        likelihood = log_likelihood(model, x, log_z)
-        best = likelihood
-        if not closed_form:
-            best = log_likelihood(model, x, log_z, method="importance", generator=generator)
+        if closed_form:
+            likelihood = best = log_likelihood(model, x, log_z)
+        else:  # the bound and the importance estimate from one mean-field run
+            bound, importance = _variational_log_f(model, x, ("mean-field", "importance"), 100, generator)
+            likelihood = LogLikelihood(bound - log_z_value, "mean-field", log_z_value, estimated)
+            best = LogLikelihood(importance - log_z_value, "importance", log_z_value, estimated)
         conservative = examples = gap = None
         if reverse and reversible and x is target:
             subset = torch.randperm(len(x), generator=generator)[:reverse_examples]
@@ -572,5 +585,4 @@ def evaluate(
     train_metrics = metrics_of(data)
     test_metrics = None if test is None else metrics_of(test)
     gap = free_energy_gap(model, data, test) if closed_form and test is not None else None
-    log_z_value = log_z if isinstance(log_z, float) else _check_log_z(log_z)[0]
     return Evaluation(log_z_value, source, estimate, train_metrics, test_metrics, gap, tuple(cautions))

@@ -113,6 +113,11 @@ class EnergyModel(nn.Module):
         states = check_states("states", states, self.sizes, self.dtype)
         return F.layer_logits(states, layer, self.biases(), self.weights(), self.edges)
 
+    @property
+    def has_free_energy(self) -> bool:
+        """Whether :meth:`free_energy` exists in closed form (no two non-visible units coupled)."""
+        return first_coupled_pair(self.edges, {0}) is None
+
     def free_energy(self, v: Tensor, *, dtype: torch.dtype | None = None) -> Tensor:
         r"""Free energy ``(B,)`` of visible data, :math:`F(v) = -\log \sum_h e^{-E(v, h)}`.
 

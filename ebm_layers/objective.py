@@ -8,9 +8,8 @@ from dataclasses import dataclass, field
 import torch
 from torch import Tensor, nn
 
-from ._checks import check_real
+from ._checks import check_model, check_real
 from .enumeration import ExactStatistics
-from .graph import first_coupled_pair
 from .inference import MeanField
 from .model import EnergyModel
 from .sampling import DataParticles, PersistentSampler
@@ -89,8 +88,7 @@ class TwoPhaseObjective(nn.Module):
         max_weight: float = 1e4,
     ) -> None:
         super().__init__()
-        if not isinstance(model, EnergyModel):
-            raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
+        check_model(model)
         positive = MeanField(model) if positive is None else positive
         negative = PersistentSampler(model) if negative is None else negative
         for name, phase, kinds in (
@@ -275,7 +273,7 @@ def _rms(x: Tensor) -> float:
 
 @torch.no_grad()
 def _mean_free_energy(model: EnergyModel, v: Tensor) -> float | None:
-    if first_coupled_pair(model.edges, {0}) is not None:
+    if not model.has_free_energy:
         return None
     return float(model.free_energy(v.to(model.dtype)).mean())
 
@@ -295,8 +293,7 @@ def weight_decay_groups(model: EnergyModel, weight_decay: float) -> list[dict]:
         >>> [len(g["params"]) for g in groups], [g["weight_decay"] for g in groups]
         ([2, 3], [0.0001, 0.0])
     """
-    if not isinstance(model, EnergyModel):
-        raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
+    check_model(model)
     weight_decay = check_real("weight_decay", weight_decay)
     if not 0.0 <= weight_decay < math.inf:
         raise ValueError(f"weight_decay must be >= 0 and finite, got {weight_decay}")

@@ -14,7 +14,7 @@ from torch.nn.functional import softplus
 from tqdm.auto import tqdm
 
 from . import functional as F
-from ._checks import check_batch, check_size
+from ._checks import check_batch, check_model, check_size
 from ._random import resolve_generator
 from .enumeration import MAX_STATES, exact_moments
 from .inference import MeanField
@@ -25,6 +25,7 @@ __all__ = [
     "Estimate",
     "ais_log_partition",
     "annealing_schedule",
+    "can_reverse_anneal",
     "exact_log_partition",
     "reverse_ais_log_likelihood",
 ]
@@ -70,8 +71,7 @@ def exact_log_partition(model: EnergyModel, *, max_states: int = MAX_STATES) -> 
         >>> round(el.exact_log_partition(model).item(), 4)  # 6 free units: 6 log 2
         4.1589
     """
-    if not isinstance(model, EnergyModel):
-        raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
+    check_model(model)
     parameters = [*model.biases(), *model.weights()]
     if torch.is_grad_enabled() and any(p.requires_grad for p in parameters):
         return _ExactLogPartition.apply(model, max_states, *parameters)
@@ -223,23 +223,30 @@ class _AnnealingPath:
         return states
 
     def terms(self, states: list[Tensor | None]) -> _Terms:
-        """What every ``log f_beta`` of the current kept states needs (one product per coupling)."""
+        """What ``log f_beta`` of the current kept states needs at any beta (one product per
+        coupling into the summed layers)."""
         inputs = {
             s: F.layer_logits(states, s, self.biases, self.weights, self.model.edges) for s in self.summed
         }
         wide = {i: states[i].to(torch.float64) for i in self.kept}
-        base = sum(wide[i] @ self.base64[i] for i in self.kept)
         shift = sum(wide[i] @ self.shift64[i] for i in self.kept)
         for edge, weight in self.kept_couplings:
             shift = shift - F.pair_energy(edge, weight, wide)
-        return _Terms(base, shift, inputs, {s: u.to(torch.float64) for s, u in inputs.items()})
+        return _Terms(wide, shift, inputs, {s: u.to(torch.float64) for s, u in inputs.items()})
 
-    def log_f(self, beta: float, terms: _Terms) -> Tensor:
-        """``log f_beta`` ``(B,)`` float64 of the states ``terms`` were computed from."""
-        total = terms.base + beta * terms.shift
+    def _summed_log_f(self, beta: float, terms: _Terms) -> Tensor:
+        total = beta * terms.shift
         for s, u in terms.wide_inputs.items():
             total = total + softplus(beta * u + (1.0 - beta) * self.base64[s]).sum(-1)
         return total
+
+    def log_f(self, beta: float, terms: _Terms) -> Tensor:
+        """``log f_beta`` ``(B,)`` float64 of the states ``terms`` were computed from."""
+        return sum(terms.wide[i] @ self.base64[i] for i in self.kept) + self._summed_log_f(beta, terms)
+
+    def log_ratio(self, beta: float, other: float, terms: _Terms) -> Tensor:
+        """``log f_beta - log f_other`` ``(B,)`` float64: the ``a.x_K`` term cancels."""
+        return self._summed_log_f(beta, terms) - self._summed_log_f(other, terms)
 
     def transition(
         self, beta: float, states: list[Tensor | None], terms: _Terms, generator: torch.Generator
@@ -257,10 +264,24 @@ class _AnnealingPath:
 
 @dataclass
 class _Terms:
-    base: Tensor  # a.x_K, (B,) float64
+    wide: dict[int, Tensor]  # the kept states in float64
     shift: Tensor  # g(x_K), (B,) float64
     inputs: dict[int, Tensor]  # u_s in the model's dtype
     wide_inputs: dict[int, Tensor]  # u_s in float64
+
+
+def _annealing(
+    model: EnergyModel, data, base: str, schedule, num_betas: int, generator: torch.Generator | None
+) -> tuple[list[float], _AnnealingPath, torch.Generator]:
+    """What a forward or reverse run needs: the betas, the path and the generator (all checked)."""
+    betas = _check_schedule(schedule, num_betas).tolist()
+    return betas, _AnnealingPath(model, _base_biases(model, data, base)), resolve_generator(generator)
+
+
+def can_reverse_anneal(model: EnergyModel) -> bool:
+    """Whether :func:`reverse_ais_log_likelihood` applies: two colour classes, no lateral couplings
+    (the marginal chain on the kept layers is then reversible)."""
+    return len(model.schedule.classes) == 2 and not model.schedule.unitwise
 
 
 def _summed_class(model: EnergyModel) -> tuple[int, ...]:
@@ -289,7 +310,7 @@ def _base_biases(model: EnergyModel, data: Tensor | None, base: str) -> list[Ten
         warnings.warn(
             f"{outside} visible units have base rates outside [{RATE_CLIP}, {1 - RATE_CLIP}] in data "
             "(constant units); clipped for the base model",
-            stacklevel=4,  # the caller of ais_log_partition (behind its no_grad wrapper)
+            stacklevel=5,  # the caller of ais_log_partition (behind _annealing and the no_grad wrapper)
         )
     biases[0] = torch.logit(clipped).to(biases[0].dtype)
     return biases
@@ -353,18 +374,15 @@ def ais_log_partition(
     Returns:
         an :class:`Estimate` with the bracket, standard error and effective sample size.
     """
-    if not isinstance(model, EnergyModel):
-        raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
+    check_model(model)
     num_chains = check_size("num_chains", num_chains)
-    betas = _check_schedule(schedule, num_betas).tolist()
-    path = _AnnealingPath(model, _base_biases(model, data, base))
-    generator = resolve_generator(generator)
+    betas, path, generator = _annealing(model, data, base, schedule, num_betas, generator)
     states = path.draw_base(num_chains, generator)
     log_weights = torch.zeros(num_chains, dtype=torch.float64)
     with tqdm(total=len(betas) - 1, desc="annealing", unit="beta", disable=not progress, miniters=100) as bar:
         for previous, beta in zip(betas[:-1], betas[1:]):
             terms = path.terms(states)
-            log_weights += path.log_f(beta, terms) - path.log_f(previous, terms)
+            log_weights += path.log_ratio(beta, previous, terms)
             if beta < 1.0:
                 path.transition(beta, states, terms, generator)
             bar.update()
@@ -411,19 +429,15 @@ def reverse_ais_log_likelihood(
     Returns:
         ``(B,)`` float64 estimates of ``log p(v)``, detached.
     """
-    if not isinstance(model, EnergyModel):
-        raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
+    check_model(model)
     v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
     num_chains = check_size("num_chains", num_chains)
-    classes, unitwise = model.schedule.classes, model.schedule.unitwise
-    if len(classes) != 2 or unitwise:
+    if not can_reverse_anneal(model):
         raise ValueError(
             f"reverse annealing needs two colour classes without lateral couplings (an RBM, a chain), "
-            f"got classes {classes} and lateral layers {sorted(unitwise)}"
+            f"got classes {model.schedule.classes} and lateral layers {sorted(model.schedule.unitwise)}"
         )
-    betas = _check_schedule(schedule, num_betas).tolist()
-    path = _AnnealingPath(model, _base_biases(model, data, base))
-    generator = resolve_generator(generator)
+    betas, path, generator = _annealing(model, data, base, schedule, num_betas, generator)
     states: list[Tensor | None] = [None] * len(model.sizes)
     states[0] = v.detach().repeat_interleave(num_chains, 0)
     log_weights = torch.zeros(states[0].shape[0], dtype=torch.float64)
@@ -444,7 +458,7 @@ def reverse_ais_log_likelihood(
         for beta, lower in zip(betas[:0:-1], betas[-2::-1]):
             path.transition(beta, states, terms, generator)
             terms = path.terms(states)
-            log_weights += path.log_f(lower, terms) - path.log_f(beta, terms)
+            log_weights += path.log_ratio(lower, beta, terms)
             bar.update()
     per_example = log_weights.view(-1, num_chains)
     return torch.logsumexp(per_example, 1) - math.log(num_chains)

@@ -1,4 +1,5 @@
-"""PersistentSampler: fantasy particles that live in buffers and move by block Gibbs sweeps."""
+"""Block Gibbs sampling: one sweep (``gibbs_sweep``), fantasy particles that persist in buffers
+(``PersistentSampler``), and persistent hidden states per training example (``DataParticles``)."""
 
 from __future__ import annotations
 
@@ -10,7 +11,7 @@ from torch import Tensor, nn
 from tqdm.auto import tqdm
 
 from . import functional as F
-from ._checks import check_batch, check_count, check_example_index, check_size
+from ._checks import check_batch, check_count, check_example_index, check_model, check_size
 from ._random import resolve_generator, track_generator_state
 from .model import EnergyModel
 from .statistics import Statistics
@@ -121,8 +122,7 @@ class PersistentSampler(nn.Module):
         probabilities: bool = False,
     ) -> None:
         super().__init__()
-        if not isinstance(model, EnergyModel):
-            raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
+        check_model(model)
         self.num_particles = check_size("num_particles", num_particles)
         self.sweeps = check_size("sweeps", sweeps)
         if isinstance(init, str):
@@ -260,8 +260,7 @@ class DataParticles(nn.Module):
         self, model: EnergyModel, num_examples: int, sweeps: int = 1, generator: torch.Generator | None = None
     ) -> None:
         super().__init__()
-        if not isinstance(model, EnergyModel):
-            raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
+        check_model(model)
         self.num_examples = check_size("num_examples", num_examples)
         self.sweeps = check_size("sweeps", sweeps)
         self.model = model

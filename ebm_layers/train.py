@@ -21,9 +21,8 @@ from torch import Tensor
 from torch.utils.data import DataLoader, RandomSampler
 from tqdm.auto import tqdm
 
-from ._checks import check_batch, check_count, check_size
+from ._checks import check_batch, check_count, check_model, check_size
 from ._random import resolve_generator
-from .graph import first_coupled_pair
 from .inference import MeanField
 from .metrics import free_energy_gap
 from .model import EnergyModel
@@ -139,8 +138,7 @@ def fit(
         a :class:`FitResult`. Raises ``FloatingPointError`` (the divergence guard of
         :class:`TwoPhaseObjective`) when training diverges.
     """
-    if not isinstance(model, EnergyModel):
-        raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")
+    check_model(model)
     epochs = check_count("epochs", epochs)
     loader = data if isinstance(data, DataLoader) else None
     if loader is not None:
@@ -195,7 +193,7 @@ def fit(
         for epoch in range(start, epochs):
             bar.set_description(f"epoch {epoch + 1}/{epochs}")
             began = time.perf_counter()
-            gaps, iterations, seen = [], [], []
+            gaps, iterations, seen, seen_rows = [], [], [], 0
             for v, index in _batches(data, loader, batch_size, shuffling, with_index):
                 loss = objective(v, index=index) if with_index else objective(v)
                 optimizer.zero_grad(set_to_none=True)
@@ -205,12 +203,14 @@ def fit(
                 monitors = objective.last
                 gaps.append(monitors.statistics_gap)
                 iterations.append(monitors.mean_field_iterations)
-                if validation is not None and sum(len(x) for x in seen) < len(validation):
+                if validation is not None and seen_rows < len(validation):
                     seen.append(v.detach())
+                    seen_rows += len(v)
                 bar.update()
                 bar.set_postfix(gap=f"{gaps[-1]:.4f}", refresh=False)
-                state = FitState("batch", epoch, step, objective, optimizer, scheduler, result.history)
-                if _run(callbacks, state):
+                if callbacks and _run(
+                    callbacks, FitState("batch", epoch, step, objective, optimizer, scheduler, result.history)
+                ):
                     return result  # stopped mid-epoch: no record, scheduler step or checkpoint for it
             objective.check_parameters()
             record = {
@@ -232,8 +232,9 @@ def fit(
                 bar.set_postfix(
                     gap=f"{record['statistics_gap']:.4f}", held_out_dF=f"{record['free_energy_gap']:.3f}"
                 )
-            state = FitState("epoch", epoch, step, objective, optimizer, scheduler, result.history)
-            if _run(callbacks, state) or state.stop:
+            if _run(
+                callbacks, FitState("epoch", epoch, step, objective, optimizer, scheduler, result.history)
+            ):
                 break
     return result
 
@@ -330,7 +331,7 @@ def _batches(data, loader, batch_size, shuffling, with_index) -> Iterable[tuple[
 
 def _free_energy_gap(model: EnergyModel, validation: Tensor | None, seen: list[Tensor]) -> float | None:
     """Held-out minus training mean free energy on as many examples of each (``None`` if undefined)."""
-    if validation is None or not seen or first_coupled_pair(model.edges, {0}) is not None:
+    if validation is None or not seen or not model.has_free_energy:
         return None
     training = torch.cat(seen)[: len(validation)]
     return free_energy_gap(model, training, validation[: len(training)])
