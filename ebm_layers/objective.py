@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import torch
@@ -48,6 +49,19 @@ class TwoPhaseObjective(nn.Module):
             Guide to Training Restricted Boltzmann Machines", UTML TR 2010-003, 2010, section 11).
             Lateral weights get no sparsity term.
         sparsity_cost, sparsity_decay: the strength of that term and the decay of the running average.
+        centering: off by default. Train in the centered parametrisation: the energy is written
+            with every unit shifted by an offset, :math:`-\sum_l b'_l \cdot (x_l - c_l) - \sum
+            (x_a - c_a) W (x_b - c_b)^\top`, whose likelihood gradient is better conditioned
+            ("Deep Boltzmann Machines and the Centering Trick", Neural Networks: Tricks of the
+            Trade, 2012; "How to Center Deep Boltzmann Machines", JMLR 2016). The weight gradient
+            becomes the difference of centered covariances and every bias gradient loses
+            ``W``-gradient times the offsets of its neighbours, so the step is the centered one
+            mapped back onto the ordinary ``bias``/``weight``: the model (and sampler, mean field,
+            AIS, enumeration) keeps its ordinary energy and never sees the offsets.
+        offset_decay: the offsets ``c`` are running means, updated after every step towards the
+            average of the data and model means (as the JMLR paper recommends):
+            ``c <- offset_decay * c + (1 - offset_decay) * (data mean + model mean) / 2``;
+            ``1.0`` keeps them fixed.
         max_weight: divergence guard. Before the statistics of a step are used, every parameter
             must be finite and every weight at most ``max_weight`` in magnitude, and the statistics
             and loss must be finite; otherwise ``FloatingPointError`` is raised before any gradient
@@ -60,6 +74,8 @@ class TwoPhaseObjective(nn.Module):
     Attributes:
         last: the :class:`Monitors` of the latest call (``None`` before the first).
         sparsity_mean_<i>: buffer ``(n_i,)``, the running hidden means ``q`` (with ``sparsity_target``).
+        offset_<i>: buffer ``(n_i,)`` of every layer, the centering offsets ``c`` (with
+            ``centering``), starting at 0.5.
 
     Examples::
 
@@ -85,6 +101,8 @@ class TwoPhaseObjective(nn.Module):
         sparsity_target: float | None = None,
         sparsity_cost: float = 0.1,
         sparsity_decay: float = 0.9,
+        centering: bool = False,
+        offset_decay: float = 0.99,
         max_weight: float = 1e4,
     ) -> None:
         super().__init__()
@@ -110,6 +128,11 @@ class TwoPhaseObjective(nn.Module):
         sparsity_decay = check_real("sparsity_decay", sparsity_decay)
         if not 0.0 <= sparsity_decay < 1.0:
             raise ValueError(f"sparsity_decay must lie in [0, 1), got {sparsity_decay}")
+        if not isinstance(centering, bool):
+            raise TypeError(f"centering must be True or False, got {centering!r}")
+        offset_decay = check_real("offset_decay", offset_decay)
+        if not 0.0 <= offset_decay <= 1.0:
+            raise ValueError(f"offset_decay must lie in [0, 1], got {offset_decay}")
         max_weight = check_real("max_weight", max_weight)
         if not 0.0 < max_weight:
             raise ValueError(f"max_weight must be positive, got {max_weight}")
@@ -119,7 +142,11 @@ class TwoPhaseObjective(nn.Module):
             sparsity_cost,
             sparsity_decay,
         )
+        self.centering, self.offset_decay = centering, offset_decay
         self.max_weight = max_weight
+        if centering:
+            for i, n in enumerate(model.sizes):
+                self.register_buffer(f"offset_{i}", torch.full((n,), 0.5, dtype=model.dtype))
         if sparsity_target is not None:
             for i, n in enumerate(model.sizes[1:], start=1):
                 self.register_buffer(
@@ -142,7 +169,7 @@ class TwoPhaseObjective(nn.Module):
             [d - m for d, m in zip(data.means, fantasy.means)],
             [d - m for d, m in zip(data.pairs, fantasy.pairs)],
         )
-        coefficients = self._with_sparsity(difference, data)
+        coefficients, running = self._coefficients(difference, data, fantasy)
         # Linear in the parameters: d loss / d theta = -coefficient, an elementwise backward.
         loss = -sum(_dot(b, c) for b, c in zip(model.biases(), coefficients.means))
         for w, c, (a, b) in zip(model.weights(), coefficients.pairs, model.edges):
@@ -152,6 +179,9 @@ class TwoPhaseObjective(nn.Module):
             raise FloatingPointError(
                 f"the statistics or the loss are not finite ({loss.item()}): {_LIKELY_CAUSE}"
             )
+        with torch.no_grad():  # only now that the step is accepted
+            for buffer, value in running:
+                buffer.copy_(value)
         particles = getattr(self.negative, "particles", None)
         self.last = Monitors(
             difference=difference,
@@ -179,16 +209,29 @@ class TwoPhaseObjective(nn.Module):
                 )
 
     @torch.no_grad()
-    def _with_sparsity(self, difference: Statistics, data: Statistics) -> Statistics:
-        """The gradient coefficients: ``difference``, plus the sparsity term when it is on."""
+    def _coefficients(
+        self, difference: Statistics, data: Statistics, fantasy: Statistics
+    ) -> tuple[Statistics, list[tuple[Tensor, Tensor]]]:
+        """The gradient coefficients of the step (``difference`` with the centering and sparsity
+        terms when they are on), and the new values of the running buffers as ``(buffer, value)``
+        pairs, copied in only once the step is accepted."""
+        running = []
+        coefficients = difference
+        if self.centering:
+            offsets = self.offsets
+            coefficients = _centered(difference, offsets, self.model.edges)
+            rate = 1.0 - self.offset_decay
+            for c, d, m in zip(offsets, data.means, fantasy.means):
+                running.append((c, c + rate * ((d + m) / 2 - c)))
         if self.sparsity_target is None:
-            return difference
-        means, pairs = list(difference.means), list(difference.pairs)
+            return coefficients, running
+        means, pairs = list(coefficients.means), list(coefficients.pairs)
         deviation = {}
         for i in range(1, len(means)):
-            running = getattr(self, f"sparsity_mean_{i}")
-            running.mul_(self.sparsity_decay).add_(data.means[i], alpha=1.0 - self.sparsity_decay)
-            deviation[i] = self.sparsity_cost * (running - self.sparsity_target)
+            buffer = getattr(self, f"sparsity_mean_{i}")
+            mean = self.sparsity_decay * buffer + (1.0 - self.sparsity_decay) * data.means[i]
+            running.append((buffer, mean))
+            deviation[i] = self.sparsity_cost * (mean - self.sparsity_target)
             means[i] = means[i] - deviation[i]
         for k, (a, b) in enumerate(self.model.edges):
             if a == b:
@@ -197,16 +240,51 @@ class TwoPhaseObjective(nn.Module):
                 pairs[k] = pairs[k] - torch.outer(data.means[a], deviation[b])
             if a in deviation:
                 pairs[k] = pairs[k] - torch.outer(deviation[a], data.means[b])
-        return Statistics(means, pairs)
+        return Statistics(means, pairs), running
+
+    @property
+    def offsets(self) -> list[Tensor]:
+        """The centering offsets, one ``(n_i,)`` buffer per layer (empty without ``centering``)."""
+        if not self.centering:
+            return []
+        return [getattr(self, f"offset_{i}") for i in range(len(self.model.layers))]
 
     def extra_repr(self) -> str:
         options = [f"max_weight={self.max_weight:g}"]
+        if self.centering:
+            options.append(f"centering=True, offset_decay={self.offset_decay}")
         if self.sparsity_target is not None:
             options.append(
                 f"sparsity_target={self.sparsity_target}, sparsity_cost={self.sparsity_cost}, "
                 f"sparsity_decay={self.sparsity_decay}"
             )
         return ", ".join(options)
+
+
+def _centered(difference: Statistics, offsets: Sequence[Tensor], edges) -> Statistics:
+    """The centered learning rule in ordinary coordinates.
+
+    A coupling's coefficient is the difference of centered covariances
+    ``<(x_a - c_a)^T (x_b - c_b)>``: ``D - c_a^T dm_b - dm_a^T c_b`` with ``D`` the pair and
+    ``dm`` the mean differences. The centered bias coefficient is ``dm`` itself; since the ordinary
+    bias is ``b = b' - W c_b`` (summed over neighbours), a step ``dW`` of the weights moves it by
+    ``-dW c_b``, so each bias coefficient loses ``G c_b`` for every coupling, with ``G`` the weight
+    change per unit step. For a lateral coupling that change is ``G`` without its diagonal: the
+    free upper triangle's gradient is the whole off-diagonal coefficient (the 1/2 of the energy
+    term counted twice) and the diagonal stays zero.
+    """
+    means = list(difference.means)
+    pairs = []
+    for (a, b), pair in zip(edges, difference.pairs):
+        dm_a, dm_b, c_a, c_b = difference.means[a], difference.means[b], offsets[a], offsets[b]
+        centered = pair - torch.outer(c_a, dm_b) - torch.outer(dm_a, c_b)
+        pairs.append(centered)
+        if a == b:
+            means[a] = means[a] - (centered - torch.diag(centered.diagonal())) @ c_a
+        else:
+            means[a] = means[a] - centered @ c_b
+            means[b] = means[b] - centered.mT @ c_a
+    return Statistics(means, pairs)
 
 
 def _dot(parameter: Tensor, coefficient: Tensor) -> Tensor:
