@@ -3,6 +3,7 @@ of binary units) as composable ``torch.nn`` modules, on CPU."""
 
 from .couplings import DenseCoupling, LateralCoupling
 from .enumeration import ExactStatistics
+from .features import ConcatenatedLayers, FeatureExtractor, feedforward_network
 from .graph import UpdateSchedule
 from .inference import MeanField
 from .layers import BinaryLayer
@@ -26,18 +27,21 @@ from .partition import (
     exact_log_partition,
     reverse_ais_log_likelihood,
 )
+from .pretraining import pretrain
 from .sampling import DataParticles, PersistentSampler
 from .statistics import Statistics
 from .train import FitResult, FitState, fit, load_checkpoint, save_checkpoint
 
 __all__ = [
     "BinaryLayer",
+    "ConcatenatedLayers",
     "DataParticles",
     "DenseCoupling",
     "EnergyModel",
     "Estimate",
     "Evaluation",
     "ExactStatistics",
+    "FeatureExtractor",
     "FitResult",
     "FitState",
     "LateralCoupling",
@@ -55,10 +59,12 @@ __all__ = [
     "evaluate",
     "exact_log_likelihood",
     "exact_log_partition",
+    "feedforward_network",
     "fit",
     "free_energy_gap",
     "load_checkpoint",
     "log_likelihood",
+    "pretrain",
     "pseudo_log_likelihood",
     "rbm",
     "reconstruction_error",

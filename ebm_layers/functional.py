@@ -19,6 +19,7 @@ from torch import Tensor
 from torch.nn.functional import softplus
 
 __all__ = [
+    "base_rate_logits",
     "bernoulli",
     "bernoulli_log_probability",
     "coupling_input",
@@ -168,6 +169,13 @@ def pair_mean(x_a: Tensor, x_b: Tensor, sample_weights: Tensor | None = None) ->
     if sample_weights is None:
         return x_a.mT @ x_b / x_a.shape[0]
     return (x_a * sample_weights[:, None]).mT @ x_b
+
+
+def base_rate_logits(data: Tensor, pseudocount: float) -> Tensor:
+    """Log-odds ``(n,)`` (float64) of the smoothed base rates of ``data`` ``(B, n)``:
+    ``p_i = (sum_b v_bi + pseudocount) / (B + 2 pseudocount)``."""
+    counts = data.detach().to(torch.float64).sum(0)
+    return torch.logit((counts + pseudocount) / (data.shape[0] + 2 * pseudocount))
 
 
 def bernoulli(logits: Tensor, generator: torch.Generator) -> Tensor:

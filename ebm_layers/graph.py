@@ -12,7 +12,14 @@ from collections.abc import Collection, Sequence
 from dataclasses import dataclass
 from itertools import combinations
 
-__all__ = ["UpdateSchedule", "check_schedule", "colour_classes", "first_coupled_pair", "smallest_cover"]
+__all__ = [
+    "UpdateSchedule",
+    "check_schedule",
+    "colour_classes",
+    "first_coupled_pair",
+    "is_chain",
+    "smallest_cover",
+]
 
 Edge = tuple[int, int]
 
@@ -100,6 +107,11 @@ def first_coupled_pair(edges: Sequence[Edge], kept: Collection[int]) -> int | No
         if a not in kept and b not in kept:
             return k
     return None
+
+
+def is_chain(num_layers: int, edges: Sequence[Edge]) -> bool:
+    """Whether the couplings are exactly ``(k, k + 1)`` for consecutive layers, in order (a :func:`dbm`)."""
+    return list(edges) == [(k, k + 1) for k in range(num_layers - 1)]
 
 
 def smallest_cover(sizes: Sequence[int], edges: Sequence[Edge]) -> tuple[int, ...]:

@@ -179,9 +179,7 @@ class EnergyModel(nn.Module):
         pseudocount = check_real("pseudocount", pseudocount)
         if not 0 < pseudocount < math.inf:
             raise ValueError(f"pseudocount must be positive and finite, got {pseudocount}")
-        counts = data.detach().to(torch.float64).sum(0)
-        rates = (counts + pseudocount) / (data.shape[0] + 2 * pseudocount)
-        self.layers[0].bias.copy_(torch.logit(rates))
+        self.layers[0].bias.copy_(F.base_rate_logits(data, pseudocount))
 
     def extra_repr(self) -> str:
         return f"sizes={list(self.sizes)}, edges={list(self.edges)}"

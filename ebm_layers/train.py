@@ -23,10 +23,12 @@ from tqdm.auto import tqdm
 
 from ._checks import check_batch, check_count, check_model, check_size
 from ._random import resolve_generator
+from .graph import is_chain
 from .inference import MeanField
 from .metrics import free_energy_gap
 from .model import EnergyModel
 from .objective import TwoPhaseObjective
+from .pretraining import DEFAULT_PRETRAIN_EPOCHS, pretrain
 from .sampling import DataParticles, PersistentSampler
 
 __all__ = ["FitResult", "FitState", "default_optimizer", "fit", "load_checkpoint", "save_checkpoint"]
@@ -77,13 +79,15 @@ class FitResult:
     epoch's batches of :attr:`Monitors.statistics_gap`), ``free_energy_gap`` (mean free energy of
     the validation data minus that of as many training examples; ``None`` without validation data
     or closed-form free energy; it grows when the model overfits), ``mean_field_iterations``
-    (mean over batches, ``None`` without mean field) and ``seconds``.
+    (mean over batches, ``None`` without mean field) and ``seconds``. ``pretraining`` holds the
+    history of each RBM of the greedy pretraining (bottom first; empty without pretraining).
     """
 
     objective: TwoPhaseObjective
     optimizer: torch.optim.Optimizer
     scheduler: object | None
     history: list[dict] = field(default_factory=list)
+    pretraining: list[list[dict]] = field(default_factory=list)
 
 
 def fit(
@@ -101,6 +105,7 @@ def fit(
     checkpoint: str | os.PathLike | None = None,
     resume: str | os.PathLike | None = None,
     generator: torch.Generator | None = None,
+    pretrain_epochs: int | None = None,
 ) -> FitResult:
     """Train ``model`` on ``data`` for ``epochs`` passes with the two-phase learning rule.
 
@@ -109,7 +114,9 @@ def fit(
     phase; batches of 10; Adam at learning rate 0.01, decayed linearly towards zero over
     ``epochs`` (see :func:`default_optimizer`). With tensor data, a fresh model's all-zero
     visible biases are first set to the log-odds of the data's base rates
-    (:meth:`EnergyModel.init_visible_bias_from`).
+    (:meth:`EnergyModel.init_visible_bias_from`). A fresh deep chain (three layers or more, as
+    built by :func:`dbm`) is first pretrained greedily from RBMs (:func:`pretrain`,
+    ``DEFAULT_PRETRAIN_EPOCHS`` passes per RBM), then trained jointly for ``epochs`` passes.
 
     Args:
         model: the :class:`EnergyModel`.
@@ -132,7 +139,12 @@ def fit(
             scheduler, epoch, history and the shuffling generator.
         resume: continue from this checkpoint, bit-identically with an uninterrupted run given
             the same arguments.
-        generator: the ``torch.Generator`` behind the default sampler and the shuffling.
+        generator: the ``torch.Generator`` behind the default sampler, the shuffling and the
+            pretraining.
+        pretrain_epochs: passes over the data for each RBM of :func:`pretrain` before joint
+            training; ``0`` turns pretraining off. Default: ``DEFAULT_PRETRAIN_EPOCHS`` for a
+            fresh deep chain with tensor data, else none. Never when resuming (the checkpoint
+            holds the pretrained and jointly trained model); an interrupted pretraining starts over.
 
     Returns:
         a :class:`FitResult`. Raises ``FloatingPointError`` (the divergence guard of
@@ -179,10 +191,17 @@ def fit(
                 stacklevel=2,
             )
 
+    pretrain_epochs = _pretrain_epochs(pretrain_epochs, model, loader, resume)
+
     result = FitResult(objective, optimizer, scheduler)
     start = 0
     if resume is not None:
         start = _resume(resume, result, shuffling)
+    elif pretrain_epochs:
+        stages = pretrain(
+            model, data, epochs=pretrain_epochs, batch_size=batch_size, progress=progress, generator=generator
+        )
+        result.pretraining = [stage.history for stage in stages]
     elif loader is None and _is_fresh(model):
         model.init_visible_bias_from(data)
 
@@ -286,6 +305,7 @@ def _checkpoint_state(result: FitResult, epochs_done: int, shuffling: torch.Gene
         "scheduler": None if result.scheduler is None else result.scheduler.state_dict(),
         "shuffling": None if shuffling is None else shuffling.get_state(),
         "history": result.history,
+        "pretraining": result.pretraining,
     }
 
 
@@ -309,6 +329,7 @@ def _resume(path, result: FitResult, shuffling: torch.Generator | None) -> int:
     if shuffling is not None and state["shuffling"] is not None:
         shuffling.set_state(state["shuffling"])
     result.history.extend(state["history"])
+    result.pretraining = state.get("pretraining", [])
     return state["epoch"]
 
 
@@ -335,6 +356,23 @@ def _free_energy_gap(model: EnergyModel, validation: Tensor | None, seen: list[T
         return None
     training = torch.cat(seen)[: len(validation)]
     return free_energy_gap(model, training, validation[: len(training)])
+
+
+def _pretrain_epochs(pretrain_epochs: int | None, model: EnergyModel, loader, resume) -> int:
+    """Passes per RBM of the greedy pretraining this call runs (0: none)."""
+    deep_chain = len(model.layers) > 2 and is_chain(len(model.layers), model.edges)
+    if pretrain_epochs is None:
+        fresh = loader is None and resume is None and _is_fresh(model)
+        return DEFAULT_PRETRAIN_EPOCHS if deep_chain and fresh else 0
+    pretrain_epochs = check_count("pretrain_epochs", pretrain_epochs)
+    if pretrain_epochs and not deep_chain:
+        raise ValueError(
+            f"pretrain_epochs={pretrain_epochs} needs a chain of three layers or more as built by dbm(), "
+            f"got sizes {list(model.sizes)} and edges {list(model.edges)}"
+        )
+    if pretrain_epochs and loader is not None:
+        raise ValueError(f"pretrain_epochs={pretrain_epochs} needs tensor data, not a DataLoader")
+    return 0 if resume is not None else pretrain_epochs
 
 
 def _is_fresh(model: EnergyModel) -> bool:
