@@ -1,0 +1,200 @@
+"""Greedy layer-wise pretraining: tied copies, composition, and every layer in use afterwards.
+
+Sources of the checks: the recipe of "Deep Boltzmann Machines" (AISTATS 2009) and "An Efficient
+Learning Procedure for Deep Boltzmann Machines" (Neural Computation, 2012) for what is composed
+how; the conditionals of an RBM with two tied copies of a layer written out by hand
+(mathematics); "layers in use" as the spread of the hidden marginals across examples (common
+practice, no source).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import torch
+from torch.utils.data import DataLoader, TensorDataset
+
+import ebm_layers as el
+from ebm_layers import functional as F
+from ebm_layers.pretraining import DEFAULT_PRETRAIN_EPOCHS
+from tests.conftest import assert_unchanged, snapshot
+
+
+def random_data(rows: int, columns: int, seed: int) -> torch.Tensor:
+    generator = torch.Generator().manual_seed(seed)
+    return torch.bernoulli(torch.full((rows, columns), 0.3), generator=generator)
+
+
+def free(module: torch.nn.Module, name: str) -> torch.Tensor:
+    from torch.nn.utils import parametrize
+
+    if parametrize.is_parametrized(module, name):
+        return getattr(module.parametrizations, name).original.detach()
+    return getattr(module, name).detach()
+
+
+@pytest.fixture(scope="module")
+def pretrained():
+    g = torch.Generator().manual_seed(0)
+    model = el.dbm(6, 5, 4, 3, generator=g)
+    data = random_data(40, 6, seed=1)
+    results = el.pretrain(model, data, epochs=2, batch_size=8, progress=False, generator=g)
+    return model, data, [r.objective.model for r in results]
+
+
+def test_the_first_and_last_rbms_have_tied_copies(pretrained):
+    _, data, stages = pretrained
+    assert [s.sizes for s in stages] == [(12, 5), (5, 4), (4, 6)]
+    first, _, top = stages
+    w = first.couplings[0].weight.detach()
+    assert torch.equal(w[:6], w[6:]) and torch.equal(*first.layers[0].bias.detach().chunk(2))
+    w = top.couplings[0].weight.detach()
+    assert torch.equal(w[:, :3], w[:, 3:]) and torch.equal(*top.layers[1].bias.detach().chunk(2))
+    # Two identical copies of v each send v W: the first RBM's hidden units get 2 v W + c.
+    single = free(first.couplings[0], "weight")
+    with torch.no_grad():
+        posterior = el.MeanField(first)(data.repeat(1, 2))[1]
+    torch.testing.assert_close(posterior, torch.sigmoid(2 * data @ single + first.layers[1].bias.detach()))
+
+
+def test_the_chain_is_composed_from_the_rbms(pretrained):
+    model, _, (first, middle, top) = pretrained
+    weights = [c.weight.detach() for c in model.couplings]
+    torch.testing.assert_close(weights[0], free(first.couplings[0], "weight"))
+    torch.testing.assert_close(weights[1], 0.5 * middle.couplings[0].weight.detach())  # halved in between
+    torch.testing.assert_close(weights[2], free(top.couplings[0], "weight"))
+    biases = [layer.bias.detach() for layer in model.layers]
+    torch.testing.assert_close(biases[0], free(first.layers[0], "bias"))
+    inner = [
+        (first.layers[1].bias.detach() + middle.layers[0].bias.detach()) / 2,
+        (middle.layers[1].bias.detach() + free(top.layers[0], "bias")) / 2,
+    ]
+    torch.testing.assert_close(biases[1], inner[0])
+    torch.testing.assert_close(biases[2], inner[1])
+    torch.testing.assert_close(biases[3], free(top.layers[1], "bias"))
+
+
+def test_each_rbm_learns_from_the_marginals_of_the_one_below():
+    # With no training pass, each RBM's visible biases are the base-rate log-odds of its input:
+    # the data, then the doubled-input posterior of the first RBM.
+    g = torch.Generator().manual_seed(0)
+    model = el.dbm(6, 5, 4, generator=g)
+    data = random_data(40, 6, seed=1)
+    results = el.pretrain(model, data, epochs=0, progress=False, generator=g)
+    first, second = [r.objective.model for r in results]
+    torch.testing.assert_close(free(first.layers[0], "bias"), F.base_rate_logits(data, 1.0).float())
+    hidden = torch.sigmoid(2 * data @ free(first.couplings[0], "weight") + first.layers[1].bias.detach())
+    torch.testing.assert_close(second.layers[0].bias.detach(), F.base_rate_logits(hidden, 1.0).float())
+
+
+@pytest.fixture(scope="module")
+def digits() -> torch.Tensor:
+    from sklearn.datasets import load_digits
+
+    x = (load_digits().data >= 8).astype(np.float32)
+    return torch.from_numpy(x[:600])
+
+
+def units_in_use(model: el.EnergyModel, data: torch.Tensor) -> list[float]:
+    """Per hidden layer, the share of units whose mean-field marginal varies across examples."""
+    with torch.no_grad():
+        marginals = el.MeanField(model, init="bottom-up")(data)
+    return [float((mu.std(0) > 0.1).float().mean()) for mu in marginals[1:]]
+
+
+def test_pretraining_leaves_every_layer_in_use(digits):
+    def trained(**options) -> el.EnergyModel:
+        g = torch.Generator().manual_seed(0)
+        model = el.dbm(64, 40, 20, generator=g)
+        el.fit(model, digits, progress=False, generator=g, **options)
+        return model
+
+    # Measured: 0.82 and 1.0 of the units vary (marginal std > 0.1 across examples).
+    used = units_in_use(trained(epochs=0, pretrain_epochs=10), digits)
+    assert min(used) >= 0.75, used
+    # Negative controls: the small initial weights leave every marginal near constant, and as many
+    # passes of joint training from them leave the top layer unused (measured: 0.0).
+    assert max(units_in_use(el.dbm(64, 40, 20, generator=torch.Generator().manual_seed(0)), digits)) == 0
+    naive = units_in_use(trained(epochs=10, pretrain_epochs=0), digits)
+    assert naive[-1] < 0.75, naive
+
+
+# ---------------------------------------------------------------------------------------------
+# fit pretrains fresh deep chains by default.
+
+
+def test_fit_pretrains_a_fresh_deep_chain_by_default():
+    g = torch.Generator().manual_seed(0)
+    data = random_data(30, 6, seed=1)
+    result = el.fit(el.dbm(6, 5, 4, generator=g), data, epochs=1, batch_size=10, progress=False, generator=g)
+    assert [len(h) for h in result.pretraining] == [DEFAULT_PRETRAIN_EPOCHS] * 2
+    assert len(result.history) == 1
+    assert el.fit(el.rbm(6, 5), data, epochs=1, progress=False).pretraining == []
+    off = el.fit(el.dbm(6, 5, 4), data, epochs=1, progress=False, pretrain_epochs=0)
+    assert off.pretraining == []
+    trained = result.objective.model  # not fresh any more: no pretraining unless asked
+    assert el.fit(trained, data, epochs=1, progress=False).pretraining == []
+    asked = el.fit(trained, data, epochs=1, progress=False, pretrain_epochs=2)
+    assert [len(h) for h in asked.pretraining] == [2, 2]
+
+
+def test_fit_with_pretraining_is_reproducible_and_resumes_without_pretraining_again(tmp_path):
+    def run(epochs, resume=False, checkpoint=None, stop_after=None):
+        def interrupt(state):  # as Ctrl-C would, once epoch ``stop_after`` has ended
+            if state.event == "epoch" and state.epoch + 1 == stop_after:
+                raise KeyboardInterrupt
+
+        g = torch.Generator().manual_seed(3)
+        model = el.dbm(6, 5, 4, generator=g)
+        result = el.fit(
+            model,
+            random_data(30, 6, seed=1),
+            epochs=epochs,
+            batch_size=10,
+            pretrain_epochs=3,
+            progress=False,
+            generator=g,
+            checkpoint=checkpoint,
+            resume=checkpoint if resume else None,
+            callbacks=[interrupt],
+        )
+        return model, result
+
+    a, result_a = run(2)
+    b, _ = run(2)
+    assert all(torch.equal(x, y) for x, y in zip(a.state_dict().values(), b.state_dict().values()))
+    with pytest.raises(KeyboardInterrupt):
+        run(2, checkpoint=tmp_path / "run.pt", stop_after=1)
+    resumed, result = run(2, resume=True, checkpoint=tmp_path / "run.pt")
+    assert [len(h) for h in result.pretraining] == [3, 3]  # restored from the checkpoint, not re-run
+    assert all(torch.equal(x, y) for x, y in zip(a.state_dict().values(), resumed.state_dict().values()))
+    assert result.history[-1]["statistics_gap"] == result_a.history[-1]["statistics_gap"]
+
+
+def _bad_cases():
+    data = random_data(20, 6, seed=1)
+    lateral = el.EnergyModel(
+        [el.BinaryLayer(6), el.BinaryLayer(3), el.BinaryLayer(2)],
+        [el.DenseCoupling(0, 1, 6, 3), el.DenseCoupling(1, 2, 3, 2), el.LateralCoupling(2, 2)],
+    )
+    loader = DataLoader(TensorDataset(data), batch_size=5)
+    return [
+        (lambda m: el.pretrain(lateral, data, progress=False), ValueError, "chain"),
+        (lambda m: el.pretrain(m, data[:, :5], progress=False), ValueError, "data"),
+        (lambda m: el.pretrain(m, data, epochs=-1, progress=False), ValueError, "epochs"),
+        (lambda m: el.pretrain("model", data), TypeError, "model must be"),
+        (lambda m: el.fit(m, data, pretrain_epochs=-2, progress=False), ValueError, "pretrain_epochs"),
+        (lambda m: el.fit(m, data, pretrain_epochs=1.5, progress=False), TypeError, "pretrain_epochs"),
+        (lambda m: el.fit(el.rbm(6, 3), data, pretrain_epochs=2, progress=False), ValueError, "three layers"),
+        (lambda m: el.fit(m, loader, pretrain_epochs=2, progress=False), ValueError, "tensor data"),
+    ]
+
+
+@pytest.mark.parametrize("case", range(len(_bad_cases())))
+def test_bad_pretraining_arguments_change_nothing(case):
+    model = el.dbm(6, 4, 2, generator=torch.Generator().manual_seed(0))
+    call, error, message = _bad_cases()[case]
+    before = snapshot(model)
+    with pytest.raises(error, match=message):
+        call(model)
+    assert_unchanged(model, before)
