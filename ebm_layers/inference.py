@@ -127,7 +127,7 @@ class MeanField(nn.Module):
         self.update, self.backward, self.init = update, backward, init
         self.damping, self.tol = float(damping), float(tol)
         self.iterations, self.converged, self.residual = 0, True, 0.0
-        self._warned = False
+        self._warned = self._warned_adjoint = False
 
     def forward(
         self, v: Tensor, clamp: Mapping[int, Tensor] | None = None, missing: Tensor | None = None
@@ -337,13 +337,15 @@ class MeanField(nn.Module):
                 f"the {self.update} update (for example a saddle that damped parallel updates "
                 "settled on by symmetry); use update='colour' or backward='unroll'"
             )
-        warnings.warn(
-            f"the implicit mean-field backward did not converge in max_iter={self.max_iter} "
-            f"iterations (last change {changes[-1]:.3g}); gradients are approximate, consider "
-            "raising max_iter or backward='unroll'",
-            RuntimeWarning,
-            stacklevel=2,
-        )
+        if not self._warned_adjoint:
+            self._warned_adjoint = True
+            warnings.warn(
+                f"the implicit mean-field backward did not converge in max_iter={self.max_iter} "
+                f"iterations (last change {changes[-1]:.3g}; warned once per module); gradients are "
+                "approximate, consider raising max_iter or backward='unroll'",
+                RuntimeWarning,
+                stacklevel=2,
+            )
         return u
 
     # -- input checks ----------------------------------------------------------------------
