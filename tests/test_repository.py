@@ -106,6 +106,11 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
             ["--seeds", "0", "--epochs", "1", "--reference-steps", "2"],
             "fit defaults: median",
         ),
+        (
+            "digits_features.py",
+            "--splits 0 --epochs 1 --pretrain-epochs 1 --finetune-epochs 1 --ais-betas 10 --compare".split(),
+            "fine-tuned:",
+        ),
     ],
 )
 def test_benchmarks_run_at_tiny_size(script, arguments, expected):
