@@ -57,7 +57,11 @@ class TwoPhaseObjective(nn.Module):
             becomes the difference of centered covariances and every bias gradient loses
             ``W``-gradient times the offsets of its neighbours, so the step is the centered one
             mapped back onto the ordinary ``bias``/``weight``: the model (and sampler, mean field,
-            AIS, enumeration) keeps its ordinary energy and never sees the offsets.
+            AIS, enumeration) keeps its ordinary energy and never sees the offsets. That is the
+            centered step for gradient descent (SGD, with or without momentum); an adaptive
+            optimizer such as Adam rescales bias and weight gradients separately, so the bias
+            compensation no longer matches the weight step (on a 64-100-50 chain it made every
+            hidden unit stick; see DEVELOPERS.md): use SGD with centering.
         offset_decay: the offsets ``c`` are running means, updated after every step towards the
             average of the data and model means (as the JMLR paper recommends):
             ``c <- offset_decay * c + (1 - offset_decay) * (data mean + model mean) / 2``;

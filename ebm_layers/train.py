@@ -181,6 +181,13 @@ def fit(
         scheduler = default_scheduler if scheduler is None else scheduler
     elif not isinstance(optimizer, torch.optim.Optimizer):
         raise TypeError(f"optimizer must be a torch.optim.Optimizer, got {type(optimizer).__name__}")
+    if objective.centering and not isinstance(optimizer, torch.optim.SGD):
+        warnings.warn(
+            f"centering maps gradients, which is exact for SGD; {type(optimizer).__name__} rescales "
+            "bias and weight gradients separately and can make training collapse (see the "
+            "TwoPhaseObjective docstring): prefer torch.optim.SGD with centering",
+            stacklevel=2,
+        )
     with_index = isinstance(objective.positive, DataParticles)
     if with_index and loader is None and objective.positive.num_examples != data.shape[0]:
         raise ValueError(

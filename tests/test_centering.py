@@ -13,6 +13,7 @@ applied to its free matrix's gradient).
 from __future__ import annotations
 
 import itertools
+import warnings
 
 import pytest
 import torch
@@ -201,3 +202,19 @@ def test_bad_centering_arguments(options, error, message):
     with pytest.raises(error, match=message):
         el.TwoPhaseObjective(model, **options)
     assert_unchanged(model, before)
+
+
+def test_fit_warns_when_centering_meets_an_adaptive_optimizer():
+    g = torch.Generator().manual_seed(0)
+    model = el.rbm(6, 3, generator=g)
+    data = binary((20, 6), seed=1, dtype=torch.float32)
+
+    def run(optimizer):
+        objective = el.TwoPhaseObjective(model, centering=True)
+        el.fit(model, data, objective=objective, optimizer=optimizer, epochs=1, progress=False)
+
+    with pytest.warns(UserWarning, match="centering maps gradients"):
+        run(None)  # fit's default, Adam
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        run(torch.optim.SGD(model.parameters(), lr=0.01, momentum=0.9))
