@@ -42,6 +42,7 @@ from sklearn.svm import SVC
 from torch import nn
 
 import ebm_layers as el
+from ebm_layers.pretraining import DEFAULT_PRETRAIN_EPOCHS
 
 SIZES = (64, 100, 50)
 FROZEN_MARGIN, FINE_TUNED_TARGET = 0.01, 0.96
@@ -164,13 +165,21 @@ def run_split(seed: int, args: argparse.Namespace) -> dict:
     return row
 
 
+def _cell(value, column: str) -> str:
+    if column in ("raw", "svc", "frozen", "fine-tuned"):
+        return f"{100 * value:.1f}"
+    if column.endswith(" s"):
+        return f"{value:.0f}"
+    return str(value)
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(
         description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter
     )
     parser.add_argument("--splits", type=int, nargs="+", default=[0, 1, 2, 3, 4])
     parser.add_argument("--epochs", type=int, default=100, help="joint-training passes (fit's epochs)")
-    parser.add_argument("--pretrain-epochs", type=int, default=None, help="per RBM (default: fit's)")
+    parser.add_argument("--pretrain-epochs", type=int, default=DEFAULT_PRETRAIN_EPOCHS, help="per RBM")
     parser.add_argument("--finetune-epochs", type=int, default=30)
     parser.add_argument("--compare", action="store_true", help="also other starts at equal epochs")
     parser.add_argument("--ais-betas", type=int, default=10_000, help="AIS intermediate distributions")
@@ -181,21 +190,14 @@ def main() -> None:
     if args.compare:
         columns += ["random start", "random, centered", "pretrained, centered"]
         print("compared starts: frozen accuracy / test log-likelihood at equal joint epochs")
+    widths = {c: max(len(c), 8) for c in columns}
+    widths.update({c: 22 for c in columns[8:]})
+    print("  ".join(f"{c:>{widths[c]}}" for c in columns), flush=True)
+    rows = []
     with ProcessPoolExecutor(args.processes) as pool:
-        rows = list(pool.map(run_split, args.splits, [args] * len(args.splits)))
-    widths = {c: max(len(c), 8) if c not in ("random start",) else 14 for c in columns}
-    widths.update({c: max(len(c), 22) for c in columns[8:]})
-    print("  ".join(f"{c:>{widths[c]}}" for c in columns))
-    for row in rows:
-        cells = []
-        for c in columns:
-            value = row[c]
-            if c in ("raw", "svc", "frozen", "fine-tuned"):
-                value = f"{100 * value:.1f}"
-            elif c.endswith(" s"):
-                value = f"{value:.0f}"
-            cells.append(f"{value:>{widths[c]}}")
-        print("  ".join(cells))
+        for row in pool.map(run_split, args.splits, [args] * len(args.splits)):
+            rows.append(row)
+            print("  ".join(f"{_cell(row[c], c):>{widths[c]}}" for c in columns), flush=True)
     means = {c: statistics.mean(row[c] for row in rows) for c in ("raw", "svc", "frozen", "fine-tuned")}
     print(
         "mean    "

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import torch
 from torch import Tensor, nn
 from torch.nn.utils import parametrize
@@ -12,6 +14,9 @@ from ._random import resolve_generator
 from .graph import is_chain
 from .inference import MeanField
 from .model import EnergyModel, rbm
+
+if TYPE_CHECKING:
+    from .train import FitResult
 
 __all__ = ["pretrain"]
 
@@ -27,7 +32,7 @@ def pretrain(
     batch_size: int | None = None,
     progress: bool = True,
     generator: torch.Generator | None = None,
-) -> list:
+) -> list[FitResult]:
     """Initialise a chain ``n_0 - n_1 - ... - n_L`` from RBMs trained one above the other.
 
     The recipe of "Deep Boltzmann Machines" (AISTATS 2009) and "An Efficient Learning Procedure
