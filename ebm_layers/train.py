@@ -113,7 +113,8 @@ def fit(
     """Train ``model`` on ``data`` for ``epochs`` passes with the two-phase learning rule.
 
     With no other argument this uses defaults measured by ``benchmarks/digits_rbm.py`` (RBMs) and
-    ``benchmarks/digits_features.py`` (deep chains): mean field for the data phase; 100 persistent
+    ``benchmarks/digits_features.py`` (deep chains): mean field started from a bottom-up pass for
+    the data phase; 100 persistent
     chains advanced one sweep per batch for the model phase; batches of 10; Adam at learning rate
     0.01 (0.001 for a deep model, three layers or more), decayed linearly towards zero over
     ``epochs`` (see :func:`default_optimizer`). With tensor data, a fresh model's all-zero
@@ -171,7 +172,7 @@ def fit(
         sampler = PersistentSampler(
             model, num_particles=DEFAULT_NUM_PARTICLES, sweeps=DEFAULT_SWEEPS, generator=generator
         )
-        objective = TwoPhaseObjective(model, MeanField(model), sampler)
+        objective = TwoPhaseObjective(model, MeanField(model, init="bottom-up"), sampler)
     elif not isinstance(objective, TwoPhaseObjective):
         raise TypeError(f"objective must be a TwoPhaseObjective, got {type(objective).__name__}")
     elif objective.model is not model:
