@@ -28,6 +28,7 @@ __all__ = [
     "marginal_free_energy",
     "pair_energy",
     "pair_mean",
+    "sample_bernoulli",
     "update_layer",
 ]
 
@@ -181,9 +182,47 @@ def base_rate_logits(data: Tensor, pseudocount: float) -> Tensor:
 def bernoulli(logits: Tensor, generator: torch.Generator) -> Tensor:
     """Draw binary units with ``p(x = 1) = sigmoid(logits)``; same shape and dtype as ``logits``.
 
-    The one place Gibbs updates draw Bernoulli units, so a faster draw can replace it.
+    The one place Gibbs updates draw Bernoulli units (see :func:`sample_bernoulli`).
     """
-    return torch.bernoulli(torch.sigmoid(logits), generator=generator)
+    return sample_bernoulli(torch.sigmoid(logits), generator)
+
+
+# torch's uniform_ draws float32 on the grid k / 2^24 and float64 on k / 2^53 (checked in
+# tests/test_functional.py); other dtypes use torch.bernoulli.
+_UNIFORM_GRID = {torch.float32: 2.0**-24, torch.float64: 2.0**-53}
+
+
+def sample_bernoulli(probabilities: Tensor, generator: torch.Generator) -> Tensor:
+    """Draw binary units with ``p(x = 1) = probabilities``; same shape and dtype.
+
+    About three times faster than ``torch.bernoulli``: one uniform ``u`` per unit from
+    ``generator``, compared with ``p``. A plain ``u < p`` on the uniform's grid of step ``e``
+    (``2^-24`` in float32) would turn units on with probability ``ceil(p / e) * e``, wrong for
+    every ``p`` off the grid and never 0 < p < e exactly. So the comparison is exact outside the
+    grid cell holding ``p`` (``p - u >= e``: on; ``p - u <= 0``: off), and inside it (probability
+    ``e`` per unit) the unit is on with probability ``(p - u) / e`` by a second, float64 draw: in
+    total exactly ``p`` (to within ``e * 2^-53``). ``p - u`` is computed exactly where it matters,
+    since ``u`` and ``p`` are then within a factor of two (Sterbenz's lemma, from memory).
+    """
+    grid = _UNIFORM_GRID.get(probabilities.dtype)
+    if grid is None:
+        return torch.bernoulli(probabilities, generator=generator)
+    uniform = torch.empty_like(probabilities).uniform_(generator=generator)
+    return _threshold(probabilities, uniform, grid, generator)
+
+
+def _threshold(probabilities: Tensor, uniform: Tensor, grid: float, generator: torch.Generator) -> Tensor:
+    """``sample_bernoulli`` given the uniforms (overwritten with ``p - u``)."""
+    difference = uniform.neg_().add_(probabilities)
+    on = torch.ge(difference, grid, out=torch.empty_like(probabilities))  # written as 0.0 / 1.0
+    # Units in the grid cell of their probability are rare (probability ``grid`` each): count them
+    # with two cheap reductions instead of building their mask every time.
+    if int(torch.count_nonzero(difference > 0)) != int(torch.count_nonzero(on)):
+        cell = (difference > 0) & (difference < grid)
+        fraction = difference[cell].to(torch.float64) / grid
+        draws = torch.rand(fraction.shape, dtype=torch.float64, generator=generator) < fraction
+        on[cell] = draws.to(on.dtype)
+    return on
 
 
 def bernoulli_log_probability(x: Tensor, probabilities: Tensor) -> Tensor:

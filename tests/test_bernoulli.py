@@ -1,0 +1,89 @@
+"""The fast Bernoulli draw behind every Gibbs update: exact probabilities, independent units.
+
+Sources of the checks: binomial z-scores of draw counts (mathematics); Pearson's chi-square test
+of independence on 2x2 tables, ``scipy.stats.chi2_contingency``; the grid of torch's uniform
+draws is checked directly, since the exactness argument rests on it.
+"""
+
+from __future__ import annotations
+
+import pytest
+import torch
+from scipy.stats import chi2_contingency
+
+from ebm_layers import functional as F
+from ebm_layers.functional import _UNIFORM_GRID, _threshold
+
+Z_BOUND = 4.5
+
+
+@pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
+def test_uniform_draws_lie_on_the_assumed_grid(dtype):
+    u = torch.empty(1_000_000, dtype=dtype).uniform_(generator=torch.Generator().manual_seed(0))
+    scaled = u / _UNIFORM_GRID[dtype]
+    assert bool((scaled == scaled.floor()).all()) and float(u.max()) < 1.0 and float(u.min()) >= 0.0
+
+
+@pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
+def test_draws_have_the_right_mean_across_the_unit_interval(dtype):
+    g = torch.Generator().manual_seed(1)
+    p = torch.tensor([0.0, 1e-3, 0.01, 0.1, 0.25, 0.5, 0.7, 0.9, 0.999, 1.0], dtype=dtype)
+    draws = F.sample_bernoulli(p.expand(200_000, -1).contiguous(), g)
+    assert draws.dtype == dtype and set(draws.unique().tolist()) <= {0.0, 1.0}
+    mean = draws.mean(0)
+    error = (p * (1 - p) / len(draws)).sqrt()
+    inner = (p > 0) & (p < 1)
+    z = ((mean - p)[inner] / error[inner]).abs()
+    assert float(z.max()) < Z_BOUND, z
+    assert mean[0] == 0.0 and mean[-1] == 1.0
+
+
+def test_probabilities_below_the_grid_are_drawn_exactly():
+    # p far below float32's uniform grid (2^-24): a plain `u < p` would give exactly p(on) = 2^-24
+    # for every such p. The exact draw turns units on only in the grid cell [0, 2^-24), and there
+    # with probability p / 2^-24; conditioned on that cell (u = 0) the rate must be that fraction.
+    g = torch.Generator().manual_seed(2)
+    grid = _UNIFORM_GRID[torch.float32]
+    for p in (2.0**-30, 1e-12, 1e-40):  # 1e-40 is subnormal in float32
+        probabilities = torch.full((400_000,), p, dtype=torch.float32)
+        on = _threshold(probabilities, torch.zeros_like(probabilities), grid, g)  # every u in p's cell
+        fraction = torch.tensor(p, dtype=torch.float32).double() / grid
+        expected = float(fraction) * len(on)
+        assert abs(float(on.sum()) - expected) < Z_BOUND * max(expected, 1.0) ** 0.5 + 1
+    # In the cell of a probability on the grid's scale: p = (3 + 0.25) * 2^-24.
+    p = torch.full((400_000,), 3.25 * grid)
+    for k, rate in ((0, 1.0), (2, 1.0), (3, 0.25), (4, 0.0), (1000, 0.0)):
+        on = _threshold(p, torch.full_like(p, k * grid), grid, g)
+        error = (rate * (1 - rate) / len(on)) ** 0.5
+        assert abs(float(on.mean()) - rate) <= Z_BOUND * error + 1e-12, (k, float(on.mean()))
+    # Negative control: the plain comparison turns the cell's units always on.
+    assert float((torch.full_like(p, 3 * grid) < p).float().mean()) == 1.0
+
+
+def chi_square_p(a: torch.Tensor, b: torch.Tensor) -> float:
+    table = [[int(((a == i) & (b == j)).sum()) for j in (0, 1)] for i in (0, 1)]
+    return chi2_contingency(table).pvalue
+
+
+def test_units_and_successive_draws_are_independent():
+    g = torch.Generator().manual_seed(3)
+    p = torch.tensor([0.3, 0.5, 0.8, 0.5])
+    first = F.sample_bernoulli(p.expand(100_000, -1).contiguous(), g)
+    second = F.sample_bernoulli(p.expand(100_000, -1).contiguous(), g)
+    p_values = [chi_square_p(first[:, i], first[:, j]) for i in range(4) for j in range(i + 1, 4)]
+    p_values += [chi_square_p(first[:, i], second[:, i]) for i in range(4)]  # successive draws
+    p_values += [chi_square_p(first[:-1, 0], first[1:, 0])]  # neighbouring rows
+    assert min(p_values) > 1e-4, p_values  # 11 tests: a false alarm has probability about 1e-3
+    # Negative control: one uniform shared by a row's units makes them dependent.
+    u = torch.rand(100_000, 1, generator=g).expand(-1, 4)
+    shared = (u < p).float()
+    assert chi_square_p(shared[:, 0], shared[:, 1]) < 1e-10
+
+
+def test_draws_follow_the_generator():
+    p = torch.rand(50, 20, generator=torch.Generator().manual_seed(4))
+    a = F.sample_bernoulli(p, torch.Generator().manual_seed(5))
+    b = F.sample_bernoulli(p, torch.Generator().manual_seed(5))
+    c = F.sample_bernoulli(p, torch.Generator().manual_seed(6))
+    assert torch.equal(a, b) and not torch.equal(a, c)
+    assert torch.equal(p, torch.rand(50, 20, generator=torch.Generator().manual_seed(4)))  # input untouched
