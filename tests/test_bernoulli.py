@@ -87,3 +87,19 @@ def test_draws_follow_the_generator():
     c = F.sample_bernoulli(p, torch.Generator().manual_seed(6))
     assert torch.equal(a, b) and not torch.equal(a, c)
     assert torch.equal(p, torch.rand(50, 20, generator=torch.Generator().manual_seed(4)))  # input untouched
+
+
+def test_large_draws_do_not_depend_on_the_number_of_threads():
+    # Draws of 2^17 units or more are split between two threads; the numbers must not change.
+    p = torch.full((400, 1000), 0.5)
+    threads = torch.get_num_threads()
+    try:
+        torch.set_num_threads(1)
+        one = F.sample_bernoulli(p, torch.Generator().manual_seed(7))
+        torch.set_num_threads(2)
+        two = F.sample_bernoulli(p, torch.Generator().manual_seed(7))
+    finally:
+        torch.set_num_threads(threads)
+    assert torch.equal(one, two)
+    halves = one.view(-1).chunk(2)  # the halves come from different generators: not copies
+    assert not torch.equal(*halves) and abs(float(halves[0].mean()) - float(halves[1].mean())) < 0.01

@@ -107,6 +107,11 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
             "fit defaults: median",
         ),
         (
+            "sweep.py",
+            "--sizes 20 10 5 --particles 10 --repeats 2".split(),
+            "unit updates/s",
+        ),
+        (
             "digits_features.py",
             "--splits 0 --epochs 1 --pretrain-epochs 1 --finetune-epochs 1 --ais-betas 10 --compare".split(),
             "fine-tuned:",
