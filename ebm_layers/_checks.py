@@ -109,11 +109,11 @@ def check_batch(
     if batch is not None and x.shape[0] != batch:
         raise ValueError(f"{name} has batch size {x.shape[0]}, expected {batch} like the others")
     values = x.detach()
-    finite = torch.isfinite(values)
-    if not bool(finite.all()):
-        raise ValueError(f"{name} holds {int((~finite).sum())} non-finite values (NaN or Inf)")
-    low, high = float(values.min()), float(values.max())
-    if low < 0.0 or high > 1.0:
+    low, high = (float(m) for m in values.aminmax())  # one pass; NaN propagates into both
+    if not (0.0 <= low and high <= 1.0):
+        finite = torch.isfinite(values)
+        if not bool(finite.all()):
+            raise ValueError(f"{name} holds {int((~finite).sum())} non-finite values (NaN or Inf)")
         raise ValueError(
             f"{name} must lie in [0, 1] (binary states or Bernoulli means), got values from {low} to {high}"
         )

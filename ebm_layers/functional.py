@@ -170,7 +170,8 @@ def pair_mean(x_a: Tensor, x_b: Tensor, sample_weights: Tensor | None = None) ->
     With ``sample_weights`` ``(B,)`` (summing to one) it is the weighted sum instead.
     """
     if sample_weights is None:
-        return x_a.mT @ x_b / x_a.shape[0]
+        # The 1/B inside the product (beta=0: the zero input is never read) saves a pass over (n_a, n_b).
+        return torch.addmm(x_a.new_zeros(()), x_a.mT, x_b, beta=0, alpha=1.0 / x_a.shape[0])
     return (x_a * sample_weights[:, None]).mT @ x_b
 
 

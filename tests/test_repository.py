@@ -112,6 +112,11 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
             "unit updates/s",
         ),
         (
+            "training.py",
+            "--examples 200 --epochs 1 --digits-epochs 1".split(),
+            "scikit-learn",
+        ),
+        (
             "digits_features.py",
             "--splits 0 --epochs 1 --pretrain-epochs 1 --finetune-epochs 1 --ais-betas 10 --compare".split(),
             "fine-tuned:",
