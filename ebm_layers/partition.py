@@ -185,6 +185,10 @@ def annealing_schedule(num_betas: int, kind: str = "linear") -> Tensor:
     raise ValueError(f"kind must be 'linear' or 'piecewise', got {kind!r}")
 
 
+# The uniforms of many annealing steps are drawn at once (two threads fill each block).
+UNIFORM_BLOCK = 1 << 20
+
+
 class _AnnealingPath:
     """The path ``E_beta = (1 - beta) E_A + beta E_B`` between independent units (``A``, biases
     ``a``) and the model (``B``), with the layers ``summed`` (one colour class, no lateral
@@ -249,7 +253,7 @@ class _AnnealingPath:
         return self._summed_log_f(beta, terms) - self._summed_log_f(other, terms)
 
     def transition(
-        self, beta: float, states: list[Tensor | None], terms: _Terms, generator: torch.Generator
+        self, beta: float, states: list[Tensor | None], terms: _Terms, generator: F.Uniforms
     ) -> None:
         """One Gibbs sweep leaving ``p_beta`` invariant (``beta > 0``): the summed layers drawn
         from their conditional given the kept ones (``terms`` of the current states), then the
@@ -379,12 +383,13 @@ def ais_log_partition(
     betas, path, generator = _annealing(model, data, base, schedule, num_betas, generator)
     states = path.draw_base(num_chains, generator)
     log_weights = torch.zeros(num_chains, dtype=torch.float64)
+    uniforms = F.Uniforms(generator, model.dtype, UNIFORM_BLOCK)
     with tqdm(total=len(betas) - 1, desc="annealing", unit="beta", disable=not progress, miniters=100) as bar:
         for previous, beta in zip(betas[:-1], betas[1:]):
             terms = path.terms(states)
             log_weights += path.log_ratio(beta, previous, terms)
             if beta < 1.0:
-                path.transition(beta, states, terms, generator)
+                path.transition(beta, states, terms, uniforms)
             bar.update()
     return Estimate.from_log_weights(log_weights, path.log_z_base, len(betas))
 
@@ -452,11 +457,12 @@ def reverse_ais_log_likelihood(
             log_weights -= F.bernoulli_log_probability(states[i], probabilities)
     terms = path.terms(states)
     log_weights += path.log_f(1.0, terms) - path.log_z_base
+    uniforms = F.Uniforms(generator, model.dtype, UNIFORM_BLOCK)
     with tqdm(
         total=len(betas) - 1, desc="reverse annealing", unit="beta", disable=not progress, miniters=100
     ) as bar:
         for beta, lower in zip(betas[:0:-1], betas[-2::-1]):
-            path.transition(beta, states, terms, generator)
+            path.transition(beta, states, terms, uniforms)
             terms = path.terms(states)
             log_weights += path.log_ratio(lower, beta, terms)
             bar.update()

@@ -23,7 +23,7 @@ __all__ = ["DataParticles", "PersistentSampler", "gibbs_sweep"]
 def gibbs_sweep(
     model: EnergyModel,
     states: list[Tensor],
-    generator: torch.Generator,
+    generator: torch.Generator | F.Uniforms,
     *,
     clamped: Collection[int] = (),
     keep_probabilities: bool = False,
@@ -39,10 +39,16 @@ def gibbs_sweep(
     ``exp(-inverse_temperature * E'(x))`` with ``E'`` the model's energy under those biases (the
     intermediate distributions of annealing). Returns the conditional probabilities of the last
     class's layers without lateral couplings when ``keep_probabilities``, else an empty dict.
+    The sweep's uniforms are drawn in one block from ``generator`` (or taken from ``Uniforms``).
     """
     biases = model.biases() if biases is None else biases
     weights, edges = model.weights(), model.edges
     classes, unitwise = model.schedule.classes, model.schedule.unitwise
+    if not isinstance(generator, F.Uniforms):  # every uniform of the sweep in one block
+        drawn = [layer for layers in classes for layer in layers if layer not in clamped]
+        batch = next(x.shape[0] for x in states if x is not None)
+        count = batch * sum(model.sizes[layer] for layer in drawn)
+        generator = F.Uniforms(generator, model.dtype, count)
 
     def draw(logits: Tensor) -> Tensor:
         return F.bernoulli(logits if inverse_temperature == 1.0 else inverse_temperature * logits, generator)

@@ -103,3 +103,29 @@ def test_large_draws_do_not_depend_on_the_number_of_threads():
     assert torch.equal(one, two)
     halves = one.view(-1).chunk(2)  # the halves come from different generators: not copies
     assert not torch.equal(*halves) and abs(float(halves[0].mean()) - float(halves[1].mean())) < 0.01
+
+
+def test_uniform_blocks_hand_out_one_draw_in_order():
+    g = torch.Generator().manual_seed(8)
+    uniforms = F.Uniforms(g, torch.float32, block_size=10)
+    parts = [uniforms.take((2, 3)), uniforms.take((4,))]
+    whole = torch.empty(10).uniform_(generator=torch.Generator().manual_seed(8))
+    assert torch.equal(torch.cat([parts[0].reshape(-1), parts[1]]), whole)
+    # The block is exhausted: the next request draws a new one (large enough for it).
+    big = uniforms.take((25,))
+    assert big.shape == (25,) and not torch.equal(big[:10], whole)
+    # A float64 request from a float32 block draws its own uniforms from the same generator.
+    draws = F.sample_bernoulli(torch.full((3,), 0.5, dtype=torch.float64), uniforms)
+    assert draws.dtype == torch.float64
+
+
+def test_a_sweep_is_reproducible_from_the_generator_state():
+    import ebm_layers as el
+
+    model = el.dbm(6, 5, 4, generator=torch.Generator().manual_seed(9))
+    runs = []
+    for seed in (10, 10, 11):
+        states = [torch.zeros(3, n) for n in model.sizes]
+        el.sampling.gibbs_sweep(model, states, torch.Generator().manual_seed(seed))
+        runs.append(torch.cat(states, dim=1))
+    assert torch.equal(runs[0], runs[1]) and not torch.equal(runs[0], runs[2])
