@@ -377,8 +377,15 @@ def _pretrain_epochs(pretrain_epochs: int | None, model: EnergyModel, loader, re
     """Passes per RBM of the greedy pretraining this call runs (0: none)."""
     deep_chain = len(model.layers) > 2 and is_chain(len(model.layers), model.edges)
     if pretrain_epochs is None:
-        fresh = loader is None and resume is None and _is_fresh(model)
-        return DEFAULT_PRETRAIN_EPOCHS if deep_chain and fresh else 0
+        fresh = deep_chain and resume is None and _is_fresh(model)
+        if fresh and loader is not None:
+            warnings.warn(
+                "a fresh deep chain is trained from its random weights: greedy pretraining needs tensor "
+                "data, not a DataLoader (without it the upper layers tend to stay unused); call "
+                "pretrain(model, tensor) first, or pass the data as a tensor",
+                stacklevel=3,
+            )
+        return DEFAULT_PRETRAIN_EPOCHS if fresh and loader is None else 0
     pretrain_epochs = check_count("pretrain_epochs", pretrain_epochs)
     if pretrain_epochs and not deep_chain:
         raise ValueError(

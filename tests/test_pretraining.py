@@ -138,6 +138,14 @@ def test_fit_pretrains_a_fresh_deep_chain_by_default():
     assert [len(h) for h in asked.pretraining] == [2, 2]
 
 
+def test_fit_warns_that_a_data_loader_skips_pretraining():
+    data = random_data(20, 6, seed=1)
+    loader = DataLoader(TensorDataset(data), batch_size=5)
+    with pytest.warns(UserWarning, match="greedy pretraining needs tensor data"):
+        result = el.fit(el.dbm(6, 5, 4), loader, epochs=1, progress=False)
+    assert result.pretraining == []
+
+
 def test_fit_with_pretraining_is_reproducible_and_resumes_without_pretraining_again(tmp_path):
     def run(epochs, resume=False, checkpoint=None, stop_after=None):
         def interrupt(state):  # as Ctrl-C would, once epoch ``stop_after`` has ended

@@ -117,6 +117,7 @@ def test_resume_after_an_interruption_is_bit_identical(tmp_path):
     assert not torch.equal(fresh[0].couplings[0].weight, resumed[0].couplings[0].weight)
 
 
+@pytest.mark.filterwarnings("ignore:a fresh deep chain is trained from its random weights")
 def test_resume_with_a_data_loader_and_data_particles(tmp_path):
     def run(folder: Path, stop_after=None, resume=False):
         folder.mkdir(exist_ok=True)
