@@ -50,8 +50,11 @@ def gibbs_sweep(
         count = batch * sum(model.sizes[layer] for layer in drawn)
         generator = F.Uniforms(generator, model.dtype, count)
 
+    def conditional(logits: Tensor) -> Tensor:
+        return torch.sigmoid(logits if inverse_temperature == 1.0 else inverse_temperature * logits)
+
     def draw(logits: Tensor) -> Tensor:
-        return F.bernoulli(logits if inverse_temperature == 1.0 else inverse_temperature * logits, generator)
+        return F.sample_bernoulli(conditional(logits), generator)
 
     probabilities: dict[int, Tensor] = {}
     for c, layers in enumerate(classes):
@@ -61,9 +64,8 @@ def gibbs_sweep(
             if layer in clamped:
                 continue
             if last and layer not in unitwise:
-                logits = inverse_temperature * F.layer_logits(states, layer, biases, weights, edges)
-                probabilities[layer] = torch.sigmoid(logits)
-                new[layer] = F.bernoulli(logits, generator)
+                probabilities[layer] = conditional(F.layer_logits(states, layer, biases, weights, edges))
+                new[layer] = F.sample_bernoulli(probabilities[layer], generator)
             else:
                 new[layer] = F.update_layer(
                     states, layer, biases, weights, edges, draw, unitwise=layer in unitwise

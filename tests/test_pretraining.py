@@ -17,20 +17,13 @@ from torch.utils.data import DataLoader, TensorDataset
 import ebm_layers as el
 from ebm_layers import functional as F
 from ebm_layers.pretraining import DEFAULT_PRETRAIN_EPOCHS
+from ebm_layers.pretraining import _free as free
 from tests.conftest import assert_unchanged, snapshot
 
 
 def random_data(rows: int, columns: int, seed: int) -> torch.Tensor:
     generator = torch.Generator().manual_seed(seed)
     return torch.bernoulli(torch.full((rows, columns), 0.3), generator=generator)
-
-
-def free(module: torch.nn.Module, name: str) -> torch.Tensor:
-    from torch.nn.utils import parametrize
-
-    if parametrize.is_parametrized(module, name):
-        return getattr(module.parametrizations, name).original.detach()
-    return getattr(module, name).detach()
 
 
 @pytest.fixture(scope="module")
