@@ -236,21 +236,35 @@ class _AnnealingPath:
         shift = sum(wide[i] @ self.shift64[i] for i in self.kept)
         for edge, weight in self.kept_couplings:
             shift = shift - F.pair_energy(edge, weight, wide)
-        return _Terms(wide, shift, inputs, {s: u.to(torch.float64) for s, u in inputs.items()})
+        return _Terms(wide, shift, inputs)
 
-    def _summed_log_f(self, beta: float, terms: _Terms) -> Tensor:
-        total = beta * terms.shift
-        for s, u in terms.wide_inputs.items():
-            total = total + softplus(beta * u + (1.0 - beta) * self.base64[s]).sum(-1)
-        return total
+    def _summed_logits(self, beta: float, s: int, u: Tensor) -> Tensor:
+        """``beta * u_s + (1 - beta) * a_s``: the logits of summed layer ``s`` at ``beta``."""
+        return u if beta == 1.0 else beta * u + (1.0 - beta) * self.base_biases[s]
 
     def log_f(self, beta: float, terms: _Terms) -> Tensor:
         """``log f_beta`` ``(B,)`` float64 of the states ``terms`` were computed from."""
-        return sum(terms.wide[i] @ self.base64[i] for i in self.kept) + self._summed_log_f(beta, terms)
+        total = sum(terms.wide[i] @ self.base64[i] for i in self.kept) + beta * terms.shift
+        for s, u in terms.inputs.items():
+            total = total + softplus(self._summed_logits(beta, s, u).to(torch.float64)).sum(-1)
+        return total
 
     def log_ratio(self, beta: float, other: float, terms: _Terms) -> Tensor:
-        """``log f_beta - log f_other`` ``(B,)`` float64: the ``a.x_K`` term cancels."""
-        return self._summed_log_f(beta, terms) - self._summed_log_f(other, terms)
+        """``log f_beta - log f_other`` ``(B,)`` float64: the ``a.x_K`` term cancels.
+
+        Per summed unit ``softplus(x) - softplus(x + e)`` with ``x`` the logit at ``beta`` and
+        ``e = (other - beta)(u - a)``, computed by :func:`_softplus_drop` in the model's dtype
+        without the cancellation of subtracting two softplus values. Keeps the summed layers'
+        probabilities at ``beta`` in ``terms`` for a transition at the same ``beta``.
+        """
+        total = (beta - other) * terms.shift
+        terms.beta, terms.probabilities = beta, {}
+        for s, u in terms.inputs.items():
+            x = self._summed_logits(beta, s, u)
+            probability = torch.sigmoid(x)
+            terms.probabilities[s] = probability
+            total = total + _softplus_drop(x, (other - beta) * (u - self.base_biases[s]), probability)
+        return total
 
     def transition(
         self, beta: float, states: list[Tensor | None], terms: _Terms, generator: F.Uniforms
@@ -259,11 +273,35 @@ class _AnnealingPath:
         from their conditional given the kept ones (``terms`` of the current states), then the
         kept layers by colour class."""
         for s, u in terms.inputs.items():
-            states[s] = F.bernoulli(beta * u + (1.0 - beta) * self.base_biases[s], generator)
+            if terms.beta == beta:
+                states[s] = F.sample_bernoulli(terms.probabilities[s], generator)
+            else:
+                states[s] = F.bernoulli(self._summed_logits(beta, s, u), generator)
         tilted = [b + ((1.0 - beta) / beta) * a for b, a in zip(self.biases, self.base_biases)]
         gibbs_sweep(
             self.model, states, generator, clamped=self.summed, biases=tilted, inverse_temperature=beta
         )
+
+
+# _softplus_drop uses log1p / expm1 while |e| stays below this (the argument of log1p then stays
+# above e^-1 - 1, far from -1); beyond it the plain float64 difference is accurate enough.
+_DROP_LIMIT = 1.0
+
+
+def _softplus_drop(x: Tensor, e: Tensor, probability: Tensor) -> Tensor:
+    """``sum_j softplus(x_j) - softplus(x_j + e_j)`` per row ``(B,)`` float64, given
+    ``probability = sigmoid(x)``.
+
+    The identity ``softplus(x) - softplus(x + e) = -log1p(sigmoid(x) * expm1(e))`` (from memory;
+    it is ``log((1 + e^x) / (1 + e^(x + e)))`` rearranged) keeps every operation's relative
+    accuracy, so even float32 gives the small per-step differences of a long annealing run to
+    about 1e-7 of their size, where subtracting two float32 softplus values would lose all of it.
+    """
+    low, high = torch.aminmax(e)
+    if max(-float(low), float(high)) <= _DROP_LIMIT:
+        return torch.log1p(probability * torch.expm1(e)).sum(-1, dtype=torch.float64).neg_()
+    x, e = x.to(torch.float64), e.to(torch.float64)
+    return (softplus(x) - softplus(x + e)).sum(-1)
 
 
 @dataclass
@@ -271,7 +309,8 @@ class _Terms:
     wide: dict[int, Tensor]  # the kept states in float64
     shift: Tensor  # g(x_K), (B,) float64
     inputs: dict[int, Tensor]  # u_s in the model's dtype
-    wide_inputs: dict[int, Tensor]  # u_s in float64
+    beta: float | None = None  # the beta of ``probabilities``, set by log_ratio
+    probabilities: dict[int, Tensor] = field(default_factory=dict)  # the summed layers' at ``beta``
 
 
 def _annealing(
