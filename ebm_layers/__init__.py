@@ -1,7 +1,9 @@
 """ebm_layers: binary layered energy models (RBMs, deep Boltzmann machines, any layered graph
 of binary units) as composable ``torch.nn`` modules, on CPU."""
 
+from . import datasets
 from .couplings import DenseCoupling, LateralCoupling
+from .diagnostics import ModeOccupancy, mode_occupancy, nearest_template
 from .enumeration import ExactStatistics
 from .features import ConcatenatedLayers, FeatureExtractor, feedforward_network
 from .graph import UpdateSchedule
@@ -31,6 +33,7 @@ from .pretraining import pretrain
 from .sampling import DataParticles, PersistentSampler
 from .statistics import Statistics
 from .train import FitResult, FitState, fit, load_checkpoint, save_checkpoint
+from .viz import image_grid, save_image_grid, save_training_plot
 
 __all__ = [
     "BinaryLayer",
@@ -47,6 +50,7 @@ __all__ = [
     "LateralCoupling",
     "LogLikelihood",
     "MeanField",
+    "ModeOccupancy",
     "Monitors",
     "PersistentSampler",
     "SplitMetrics",
@@ -55,6 +59,7 @@ __all__ = [
     "UpdateSchedule",
     "ais_log_partition",
     "annealing_schedule",
+    "datasets",
     "dbm",
     "evaluate",
     "exact_log_likelihood",
@@ -62,13 +67,18 @@ __all__ = [
     "feedforward_network",
     "fit",
     "free_energy_gap",
+    "image_grid",
     "load_checkpoint",
     "log_likelihood",
+    "mode_occupancy",
+    "nearest_template",
     "pretrain",
     "pseudo_log_likelihood",
     "rbm",
     "reconstruction_error",
     "reverse_ais_log_likelihood",
     "save_checkpoint",
+    "save_image_grid",
+    "save_training_plot",
     "weight_decay_groups",
 ]

@@ -80,8 +80,9 @@ class FitResult:
 
     ``history[e]`` holds ``epoch`` (1-based), ``learning_rate``, ``statistics_gap`` (mean over the
     epoch's batches of :attr:`Monitors.statistics_gap`), ``free_energy_gap`` (mean free energy of
-    the validation data minus that of as many training examples; ``None`` without validation data
-    or closed-form free energy; it grows when the model overfits), ``mean_field_iterations``
+    the validation data minus that of as many training examples, see :func:`free_energy_gap`: the
+    mean-field free energy for a model without a closed form; ``None`` without validation data; it
+    grows when the model overfits), ``mean_field_iterations``
     (mean over batches, ``None`` without mean field) and ``seconds``. ``pretraining`` holds the
     history of each RBM of the greedy pretraining (bottom first; empty without pretraining).
     """
@@ -367,7 +368,7 @@ def _batches(data, loader, batch_size, shuffling, with_index) -> Iterable[tuple[
 
 def _free_energy_gap(model: EnergyModel, validation: Tensor | None, seen: list[Tensor]) -> float | None:
     """Held-out minus training mean free energy on as many examples of each (``None`` if undefined)."""
-    if validation is None or not seen or not model.has_free_energy:
+    if validation is None or not seen:
         return None
     training = torch.cat(seen)[: len(validation)]
     return free_energy_gap(model, training, validation[: len(training)])

@@ -30,6 +30,7 @@ from tests.test_exact import (
     randomize,
     visible_marginal,
 )
+from tests.test_partition import exact_log_marginal
 
 DEEP = ["chain3", "chain4", "skip", "hidden_lateral_chain"]  # no closed-form free energy
 
@@ -280,6 +281,29 @@ def test_free_energy_gap():
     assert el.free_energy_gap(plain, zeros, ones) == pytest.approx(-3.25, rel=1e-12)
 
 
+def test_mean_field_free_energy_gap_is_exact_on_an_rbm_and_a_bound_gap_on_a_chain():
+    # Mathematics: an RBM's posterior over the hidden layer factorises, so the mean-field free
+    # energy equals the exact one and the two gaps agree.
+    rbm = randomize(build("rbm", (5, 4)), seed=15, scale=1.5)
+    train, test = (
+        torch.bernoulli(
+            torch.full((9, 5), 0.4, dtype=torch.float64), generator=torch.Generator().manual_seed(s)
+        )
+        for s in (2, 3)
+    )
+    exact = el.free_energy_gap(rbm, train, test, method="exact")
+    assert el.free_energy_gap(rbm, train, test, method="mean-field") == pytest.approx(exact, abs=1e-9)
+    assert el.free_energy_gap(rbm, train, test) == exact
+    # A chain has no closed form: "auto" gives the mean-field gap, which is the difference of the
+    # mean-field bounds that log_likelihood reports (log Z cancels).
+    chain = randomize(build("chain3", (5, 3, 2)), seed=16, scale=1.5)
+    bounds = [el.log_likelihood(chain, x, 0.0, method="mean-field").mean for x in (train, test)]
+    assert el.free_energy_gap(chain, train, test) == pytest.approx(bounds[0] - bounds[1], abs=1e-12)
+    # Negative control: the exact free energies (brute-force enumeration) give a different gap here.
+    exact_chain = [float(exact_log_marginal(chain, x).mean()) for x in (train, test)]
+    assert abs((exact_chain[0] - exact_chain[1]) - (bounds[0] - bounds[1])) > 1e-3
+
+
 # -- bad input --------------------------------------------------------------------------------
 
 V = torch.ones(2, 6)
@@ -336,7 +360,13 @@ BAD_CALLS = [
         "train must",
     ),
     ("gap: test negative", lambda m: el.free_energy_gap(m, V, -V), ValueError, "test must lie"),
-    ("gap: without closed form", lambda m: el.free_energy_gap(m, V, V), ValueError, "closed-form"),
+    (
+        "gap: exact without closed form",
+        lambda m: el.free_energy_gap(m, V, V, method="exact"),
+        ValueError,
+        "closed-form",
+    ),
+    ("gap: unknown method", lambda m: el.free_energy_gap(m, V, V, method="bound"), ValueError, "method must"),
 ]
 
 
