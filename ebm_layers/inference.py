@@ -200,10 +200,10 @@ class MeanField(nn.Module):
             resolution = 10 * torch.finfo(self.model.dtype).eps
             hint = f"; {self.model.dtype} resolves residuals only to about {resolution:.0e}"
             hint = hint if self.tol < resolution else ""
+            remedy = "raise max_iter" + (", or use update='colour'" if self.update == "parallel" else "")
             warnings.warn(
                 f"mean field did not converge in max_iter={self.max_iter} updates: residual "
-                f"{self.residual:.3g} > tol={self.tol:g} (warned once per module); raise max_iter, "
-                f"or use damping / update='colour'{hint}",
+                f"{self.residual:.3g} > tol={self.tol:g} (warned once per module); {remedy}{hint}",
                 RuntimeWarning,
                 stacklevel=5,
             )

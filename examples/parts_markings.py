@@ -95,6 +95,7 @@ def main() -> None:
     )
     parser.add_argument("--no-progress", action="store_true", help="no progress bars")
     parser.add_argument("--examples", type=int, default=3000, help="training scans (default 3000)")
+    parser.add_argument("--test-examples", type=int, default=1000, help="held-out scans (default 1000)")
     parser.add_argument("--pretrain-epochs", type=int, default=None, help="passes per RBM (default: fit's)")
     parser.add_argument("--betas", type=int, default=10_000, help="AIS intermediate distributions")
     parser.add_argument("--burn-in", type=int, default=2000, help="sweeps before the samples are taken")
@@ -103,7 +104,7 @@ def main() -> None:
     args.out.mkdir(parents=True, exist_ok=True)
 
     g = torch.Generator().manual_seed(args.seed)
-    images, labels = parts_markings(args.examples + 1000, generator=g)
+    images, labels = parts_markings(args.examples + args.test_examples, generator=g)
     train, train_labels = images[: args.examples], labels[: args.examples]
     test, test_labels = images[args.examples :], labels[args.examples :]
 
@@ -162,7 +163,7 @@ def main() -> None:
     seconds = time.perf_counter() - started
     test_metrics = report.test
     summary = {
-        "data": f"{args.examples} training and 1000 test scans (synthetic), seed {args.seed}",
+        "data": f"{args.examples} training and {args.test_examples} test scans (synthetic), seed {args.seed}",
         "model": "chain 144-200-100",
         "epochs": args.epochs,
         "log_z": estimate.log_z,

@@ -1,5 +1,8 @@
 """The repository's promises: README commands, CI script, packaging, and the quickstart runs."""
 
+import importlib.util
+import json
+import math
 import re
 import subprocess
 import sys
@@ -22,7 +25,7 @@ def test_readme_has_exactly_two_one_line_commands_first():
     blocks = _fenced_blocks((ROOT / "README.md").read_text())
     demo, tests = blocks[0], blocks[1]
     assert len(demo) == 1 and len(tests) == 1
-    assert TORCH_PIN in demo[0] and "examples/quickstart.py" in demo[0] and "pytest" not in demo[0]
+    assert TORCH_PIN in demo[0] and "examples/parts_markings.py" in demo[0] and "pytest" not in demo[0]
     assert TORCH_PIN in tests[0] and "python -m pytest" in tests[0] and "examples/" not in tests[0]
 
 
@@ -45,9 +48,9 @@ def test_gitignore_covers_environments_caches_outputs_and_checkpoints():
         assert pattern in ignored
 
 
-def test_quickstart_runs_and_prints_exact_log_partition():
+def test_small_models_example_runs_and_prints_exact_log_partition():
     result = subprocess.run(
-        [sys.executable, str(ROOT / "examples" / "quickstart.py")],
+        [sys.executable, str(ROOT / "examples" / "small_models.py")],
         capture_output=True,
         text=True,
         timeout=120,
@@ -58,6 +61,52 @@ def test_quickstart_runs_and_prints_exact_log_partition():
     assert "persistent chains after 50 sweeps vs exact" in result.stdout
     assert "did not converge" not in result.stderr
     assert "own loop, 20 epochs" in result.stdout and "fit, 20 epochs" in result.stdout
+
+
+def test_quickstart_trains_and_saves_samples(tmp_path):
+    # A smoke test (common practice, no source): it runs as written and saves its picture.
+    result = subprocess.run(
+        [sys.executable, str(ROOT / "examples" / "quickstart.py")],
+        capture_output=True,
+        text=True,
+        timeout=120,
+        cwd=tmp_path,
+    )
+    assert result.returncode == 0, result.stderr
+    gaps = [float(line.split()[-1]) for line in result.stdout.splitlines() if line.startswith("epoch")]
+    assert len(gaps) == 10 and all(math.isfinite(gap) for gap in gaps)
+    assert (tmp_path / "out" / "quickstart_samples.png").stat().st_size > 100
+
+
+def test_parts_markings_demo_runs_at_tiny_size(tmp_path):
+    # A smoke test (common practice, no source): the demo's outputs exist and its report holds
+    # finite numbers (the conservative estimate and every share included).
+    out = tmp_path / "demo"
+    arguments = "--epochs 1 --pretrain-epochs 1 --examples 200 --test-examples 100 --betas 20 --burn-in 5"
+    result = subprocess.run(
+        [sys.executable, str(ROOT / "examples" / "parts_markings.py"), *arguments.split(), "--no-progress"]
+        + ["--out", str(out)],
+        capture_output=True,
+        text=True,
+        timeout=180,
+    )
+    assert result.returncode == 0, result.stderr
+    for row in ("test log-likelihood, conservative", "accuracy, chain features", "mode coverage"):
+        assert row in result.stdout
+    for name in ("samples.png", "filters.png", "parts_markings.pt", "report.json"):
+        assert (out / name).stat().st_size > 100, name
+    report = json.loads((out / "report.json").read_text())
+    numbers = [value for value in report.values() if isinstance(value, (int, float))]
+    numbers += [*report["sample_shares"].values(), *report["data_shares"].values()]
+    numbers.append(report["log_z_bracket"][1])
+    assert len(numbers) > 20 and all(math.isfinite(number) for number in numbers)
+    assert sum(report["sample_shares"].values()) == pytest.approx(1.0)
+    if importlib.util.find_spec("matplotlib"):
+        assert (out / "training.png").stat().st_size > 100
+    demo = [sys.executable, str(ROOT / "examples" / "parts_markings.py")]
+    help_text = subprocess.run([*demo, "--help"], capture_output=True, text=True).stdout
+    for option in ("--epochs", "--seed", "--out", "--no-progress"):
+        assert option in help_text
 
 
 def run_own_loop(*arguments: str) -> list[str]:
