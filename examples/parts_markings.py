@@ -128,11 +128,25 @@ def main() -> None:
     report = el.evaluate(model, train, test=test, num_betas=args.betas, generator=g, progress=progress)
     estimate = report.estimate
 
-    # 3. Samples after a long burn-in, and the marking types they resemble.
-    sampler = el.PersistentSampler(model, num_particles=1000, generator=g)
-    samples = sampler.sample(1000, burn_in=args.burn_in, progress=progress)[0]
+    # 3. The marking types that samples resemble: the trained model's own samples after a long
+    # burn-in from random states and from the test scans (if the two disagree, the chains have not
+    # mixed), and the persistent particles that training moved along.
     assign = el.nearest_template(marking_templates())
-    occupancy = el.mode_occupancy(samples, assign, data=test, names=MARKING_TYPES)
+
+    def occupancy_of(states: Tensor) -> el.ModeOccupancy:
+        return el.mode_occupancy(states, assign, data=test, names=MARKING_TYPES)
+
+    samples = el.PersistentSampler(model, num_particles=1000, generator=g)
+    samples = samples.sample(1000, burn_in=args.burn_in, progress=progress)[0]
+    from_data = el.PersistentSampler(model, num_particles=len(test), init=test, generator=g)
+    from_data = from_data.sample(len(test), burn_in=args.burn_in, progress=progress)[0]
+    occupancy = occupancy_of(samples)
+    shares = {
+        "data": occupancy.data_shares,
+        "particles": occupancy_of(result.objective.negative.particles[0]).sample_shares,
+        "from data": occupancy_of(from_data).sample_shares,
+        "samples": occupancy.sample_shares,
+    }
 
     # 4. Features for a classifier.
     extractor = el.FeatureExtractor(model)
@@ -174,9 +188,11 @@ def main() -> None:
         "test_log_likelihood_conservative": test_metrics.conservative_log_likelihood,
         "conservative_examples": test_metrics.conservative_examples,
         "train_log_likelihood_estimate": report.train.importance_log_likelihood,
-        "sample_shares": dict(zip(MARKING_TYPES, occupancy.sample_shares.tolist())),
-        "data_shares": dict(zip(MARKING_TYPES, occupancy.data_shares.tolist())),
-        "mode_total_variation": occupancy.total_variation,
+        "sample_burn_in": args.burn_in,
+        "shares": {key: dict(zip(MARKING_TYPES, value.tolist())) for key, value in shares.items()},
+        "total_variation": {
+            key: 0.5 * float((value - shares["data"]).abs().sum()) for key, value in shares.items()
+        },
         "missing_modes": list(occupancy.missing),
         "accuracy_raw_pixels": raw_accuracy,
         "accuracy_features": feature_accuracy,
@@ -185,49 +201,65 @@ def main() -> None:
         "seconds": seconds,
     }
     (args.out / "report.json").write_text(json.dumps(summary, indent=2))
-    print_table(summary, occupancy)
+    print_table(summary)
     saved = [*pictures, args.out / "parts_markings.pt", args.out / "report.json"]
     print(f"\nsaved {', '.join(str(p) for p in saved)}")
 
 
-def print_table(summary: dict, occupancy: el.ModeOccupancy) -> None:
+def print_table(summary: dict) -> None:
     low, high = summary["log_z_bracket"]
     low_text = "-inf" if math.isinf(low) else f"{low:.2f}"
     rows = [
         ("log Z (forward AIS)", f"{summary['log_z']:.2f}", f"bracket [{low_text}, {high:.2f}]"),
-        (
-            "test log-likelihood, lower bound",
-            f"{summary['test_log_likelihood_bound']:.2f}",
-            "mean field, nats per scan",
-        ),
+        ("test log-likelihood, lower bound", f"{summary['test_log_likelihood_bound']:.2f}", "mean field"),
         (
             "test log-likelihood, estimate",
             f"{summary['test_log_likelihood_estimate']:.2f}",
-            "importance sampling; optimistic with AIS log Z",
+            "importance sampling; optimistic with forward AIS",
         ),
         (
             "test log-likelihood, conservative",
             f"{summary['test_log_likelihood_conservative']:.2f}",
             f"reverse AIS on {summary['conservative_examples']} scans; low on average",
         ),
-        (
-            "samples' modes vs data",
-            f"{summary['mode_total_variation']:.3f}",
-            "total variation of the shares (0 = same)",
-        ),
         ("accuracy, raw pixels", f"{100 * summary['accuracy_raw_pixels']:.1f}%", "softmax regression"),
         (
             "accuracy, chain features",
             f"{100 * summary['accuracy_features']:.1f}%",
-            "same classifier, mean-field marginals",
+            "the same classifier on mean-field marginals",
         ),
     ]
     width = max(len(r[0]) for r in rows)
     print(f"\nparts markings: {summary['data']}; {summary['model']}, {summary['epochs']} epochs")
+    print("(log-likelihoods in nats per scan)")
     for name, value, note in rows:
         print(f"  {name:<{width}}  {value:>9}  {note}")
-    print("\nmode coverage of 1000 samples (nearest template) against the test scans:")
-    print("  " + str(occupancy).replace("\n", "\n  "))
+    spread = summary["test_log_likelihood_estimate"] - summary["test_log_likelihood_conservative"]
+    print("  The true test log-likelihood most likely lies between the conservative value and the estimate,")
+    wide = "" if spread < 1 else ": a wide bracket; more --betas would narrow it"
+    print(f"  {spread:.1f} nats apart{wide}.")
+    shares, distance = summary["shares"], summary["total_variation"]
+    print("\nshare of each marking type (nearest template): in the test scans; in the persistent particles")
+    print("at the end of training; in the trained model's samples after")
+    print(f"{summary['sample_burn_in']} sweeps from the test scans and from random states")
+    print("  " + f"{'type':<9}" + "".join(f"{key:>11}" for key in shares))
+    for name in shares["data"]:
+        print("  " + f"{name:<9}" + "".join(f"{100 * shares[key][name]:>10.1f}%" for key in shares))
+    print("  " + f"{'distance':<9}" + "".join(f"{distance[key]:>11.3f}" for key in shares))
+    print("  (distance: total variation from the data's shares; 0 = the same shares, 1 = no overlap)")
+    if distance["samples"] > 0.1:
+        if abs(distance["from data"] - distance["samples"]) < 0.1:
+            print(
+                "  The model's samples miss types the data have, whether the chains start at the data or at\n"
+                "  random: the model itself puts too little mass there."
+            )
+            if distance["particles"] < 0.1:
+                print("  The particles only looked right because learning kept moving them.")
+        else:
+            print(
+                "  Chains from the data and from random states disagree: they have not mixed, so the\n"
+                "  samples' shares say little about the model (raise --burn-in)."
+            )
     for warning in summary["warnings"]:
         print(f"WARNING: {warning}")
     print(f"\ntook {summary['seconds']:.0f} s")

@@ -97,10 +97,11 @@ def test_parts_markings_demo_runs_at_tiny_size(tmp_path):
         assert (out / name).stat().st_size > 100, name
     report = json.loads((out / "report.json").read_text())
     numbers = [value for value in report.values() if isinstance(value, (int, float))]
-    numbers += [*report["sample_shares"].values(), *report["data_shares"].values()]
+    numbers += [share for shares in report["shares"].values() for share in shares.values()]
+    numbers += report["total_variation"].values()
     numbers.append(report["log_z_bracket"][1])
     assert len(numbers) > 20 and all(math.isfinite(number) for number in numbers)
-    assert sum(report["sample_shares"].values()) == pytest.approx(1.0)
+    assert sum(report["shares"]["samples"].values()) == pytest.approx(1.0)
     if importlib.util.find_spec("matplotlib"):
         assert (out / "training.png").stat().st_size > 100
     demo = [sys.executable, str(ROOT / "examples" / "parts_markings.py")]
