@@ -91,7 +91,7 @@ def test_parts_markings_demo_runs_at_tiny_size(tmp_path):
         timeout=180,
     )
     assert result.returncode == 0, result.stderr
-    for row in ("test log-likelihood, conservative", "accuracy, chain features", "mode coverage"):
+    for row in ("log-likelihood, conservative", "accuracy, chain features", "share of each marking type"):
         assert row in result.stdout
     for name in ("samples.png", "filters.png", "parts_markings.pt", "report.json"):
         assert (out / name).stat().st_size > 100, name
