@@ -7,9 +7,9 @@ Sources of the checks:
   (``scipy.stats.chisquare``);
 - the templates name the type of noisy scans (a property of the data we claim in the docs,
   measured here);
-- the PNG files are decoded by matplotlib's reader (``matplotlib.image.imread``), independent of
-  our writer, when it is installed, and by the zlib-level layout of the PNG standard
-  (ISO/IEC 15948:2004) otherwise.
+- the PNG files are decoded by matplotlib's reader (``matplotlib.image.imread``, in the test
+  extra), independent of our writer, and by the chunk layout of the PNG standard (ISO/IEC
+  15948:2004).
 """
 
 from __future__ import annotations
@@ -18,6 +18,7 @@ import math
 import struct
 import zlib
 
+import matplotlib.image
 import pytest
 import torch
 from scipy.stats import chisquare
@@ -176,13 +177,11 @@ def test_image_grid_places_every_image(tmp_path):
     pixels = decode_grey_png(path.read_bytes())
     expected = (grid * 255).round().to(torch.uint8).repeat_interleave(2, 0).repeat_interleave(2, 1)
     assert torch.equal(pixels, expected)
-    matplotlib_image = pytest.importorskip("matplotlib.image")
-    read = torch.from_numpy(matplotlib_image.imread(path))
+    read = torch.from_numpy(matplotlib.image.imread(path))
     assert torch.allclose(read, expected.float() / 255, atol=1e-6)
 
 
 def test_scans_and_training_plot_are_saved(tmp_path):
-    pytest.importorskip("matplotlib")
     images, _ = parts_markings(16, generator=seeded(6))
     assert el.save_image_grid(tmp_path / "scans.png", images, IMAGE_SHAPE).stat().st_size > 100
     history = [{"epoch": e, "statistics_gap": 1.0 / e, "free_energy_gap": 0.1 * e} for e in (1, 2, 3)]
