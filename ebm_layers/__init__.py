@@ -4,6 +4,7 @@ of binary units) as composable ``torch.nn`` modules, on CPU."""
 from . import datasets
 from .couplings import DenseCoupling, LateralCoupling
 from .diagnostics import ModeOccupancy, mode_occupancy, nearest_template
+from .distributed import rank_generator, rank_states, wrap_distributed
 from .enumeration import ExactStatistics
 from .features import ConcatenatedLayers, FeatureExtractor, feedforward_network
 from .graph import UpdateSchedule
@@ -74,6 +75,8 @@ __all__ = [
     "nearest_template",
     "pretrain",
     "pseudo_log_likelihood",
+    "rank_generator",
+    "rank_states",
     "rbm",
     "reconstruction_error",
     "reverse_ais_log_likelihood",
@@ -81,4 +84,5 @@ __all__ = [
     "save_image_grid",
     "save_training_plot",
     "weight_decay_groups",
+    "wrap_distributed",
 ]

@@ -10,6 +10,7 @@ import torch
 from torch import Tensor, nn
 
 from ._checks import check_model, check_real
+from .distributed import on_any_rank, rank_average
 from .enumeration import ExactStatistics
 from .inference import MeanField
 from .model import EnergyModel
@@ -157,6 +158,9 @@ class TwoPhaseObjective(nn.Module):
                     f"sparsity_mean_{i}", torch.full((n,), sparsity_target, dtype=model.dtype)
                 )
         self.last: Monitors | None = None
+        # Set by wrap_distributed: running buffers are then averaged over the ranks, and the
+        # divergence guard decides on all ranks together.
+        self.process_group = None
 
     def forward(self, v: Tensor, index: Tensor | None = None) -> Tensor:
         """The surrogate loss of batch ``v`` ``(B, n_0)`` (``index`` ``(B,)`` with DataParticles)."""
@@ -179,7 +183,13 @@ class TwoPhaseObjective(nn.Module):
         for w, c, (a, b) in zip(model.weights(), coefficients.pairs, model.edges):
             loss = loss - _dot(w, c) * (0.5 if a == b else 1.0)
         # Any non-finite statistic makes the loss non-finite (NaN and Inf propagate through it).
-        if not bool(torch.isfinite(loss)):
+        finite = bool(torch.isfinite(loss))
+        if self.process_group is not None and on_any_rank(not finite, self.process_group):
+            raise FloatingPointError(
+                f"the statistics or the loss are not finite on {'this' if not finite else 'another'} rank "
+                f"({loss.item()} here): {_LIKELY_CAUSE}"
+            )
+        if not finite:
             raise FloatingPointError(
                 f"the statistics or the loss are not finite ({loss.item()}): {_LIKELY_CAUSE}"
             )
@@ -221,6 +231,11 @@ class TwoPhaseObjective(nn.Module):
         pairs, copied in only once the step is accepted."""
         running = []
         coefficients = difference
+        if self.process_group is not None and (self.centering or self.sparsity_target is not None):
+            # The running buffers follow the statistics of all ranks' data and particles together.
+            pooled = rank_average([*data.means, *fantasy.means], self.process_group)
+            data = Statistics(pooled[: len(data.means)], data.pairs)
+            fantasy = Statistics(pooled[len(data.means) :], fantasy.pairs)
         if self.centering:
             offsets = self.offsets
             coefficients = _centered(difference, offsets, self.model.edges)

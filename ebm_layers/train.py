@@ -17,12 +17,14 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import torch
+import torch.distributed as dist
 from torch import Tensor
-from torch.utils.data import DataLoader, RandomSampler
+from torch.utils.data import DataLoader, DistributedSampler, RandomSampler, TensorDataset
 from tqdm.auto import tqdm
 
 from ._checks import check_batch, check_count, check_model, check_size
 from ._random import resolve_generator
+from .distributed import current_world, rank_generator, rank_states, wrap_distributed
 from .graph import is_chain
 from .inference import MeanField
 from .metrics import free_energy_gap
@@ -110,6 +112,7 @@ def fit(
     resume: str | os.PathLike | None = None,
     generator: torch.Generator | None = None,
     pretrain_epochs: int | None = None,
+    distributed: bool = False,
 ) -> FitResult:
     """Train ``model`` on ``data`` for ``epochs`` passes with the two-phase learning rule.
 
@@ -151,6 +154,15 @@ def fit(
             training; ``0`` turns pretraining off. Default: ``DEFAULT_PRETRAIN_EPOCHS`` for a
             fresh deep chain with tensor data, else none. Never when resuming (the checkpoint
             holds the pretrained and jointly trained model); an interrupted pretraining starts over.
+        distributed: train data-parallel on the ranks of the initialised ``torch.distributed``
+            process group (launch every rank with the same arguments, e.g. by ``torchrun``). The
+            objective is wrapped by :func:`wrap_distributed`; each rank takes its share of every
+            epoch through a ``DistributedSampler`` (tensor data; a ``DataLoader`` must bring its
+            own), so ``batch_size`` is per rank; the default sampler's particles are seeded from
+            ``generator`` and the rank (:func:`rank_generator`). Checkpoints are written by rank 0
+            and hold every rank's particles and generators, so ``resume`` continues each rank
+            bit-identically (with the same number of ranks). Pretraining, when it runs, is repeated
+            identically on every rank. Callbacks run on every rank and must decide ``stop`` alike.
 
     Returns:
         a :class:`FitResult`. Raises ``FloatingPointError`` (the divergence guard of
@@ -169,9 +181,13 @@ def fit(
         validation = check_batch("validation", validation, model.sizes[0], dtype=model.dtype)
     callbacks = _check_callbacks(callbacks)
     generator = resolve_generator(generator)
+    if not isinstance(distributed, bool):
+        raise TypeError(f"distributed must be True or False, got {distributed!r}")
+    rank, world = current_world() if distributed else (0, 1)
     if objective is None:
+        particle_generator = rank_generator(generator.initial_seed(), rank) if distributed else generator
         sampler = PersistentSampler(
-            model, num_particles=DEFAULT_NUM_PARTICLES, sweeps=DEFAULT_SWEEPS, generator=generator
+            model, num_particles=DEFAULT_NUM_PARTICLES, sweeps=DEFAULT_SWEEPS, generator=particle_generator
         )
         objective = TwoPhaseObjective(model, MeanField(model, init="bottom-up"), sampler)
     elif not isinstance(objective, TwoPhaseObjective):
@@ -191,6 +207,13 @@ def fit(
             stacklevel=2,
         )
     with_index = isinstance(objective.positive, DataParticles)
+    if distributed and with_index:
+        raise ValueError("distributed=True needs MeanField for the data phase, not DataParticles")
+    if distributed and loader is not None and not isinstance(loader.sampler, DistributedSampler):
+        raise ValueError(
+            "with distributed=True a DataLoader needs a DistributedSampler, "
+            f"got {type(loader.sampler).__name__}"
+        )
     if with_index and loader is None and objective.positive.num_examples != data.shape[0]:
         raise ValueError(
             f"the DataParticles hold {objective.positive.num_examples} examples but data has {data.shape[0]}"
@@ -209,7 +232,7 @@ def fit(
     result = FitResult(objective, optimizer, scheduler)
     start = 0
     if resume is not None:
-        start = _resume(resume, result, shuffling)
+        start = _resume(resume, result, shuffling, (rank, world) if distributed else None)
     elif pretrain_epochs:
         stages = pretrain(
             model, data, epochs=pretrain_epochs, batch_size=batch_size, progress=progress, generator=generator
@@ -218,56 +241,74 @@ def fit(
     elif loader is None and _is_fresh(model):
         model.init_visible_bias_from(data)
 
+    if distributed and loader is None:  # this rank's share of every epoch
+        shares = DistributedSampler(
+            TensorDataset(data), world, rank, seed=generator.initial_seed(), drop_last=True
+        )
+        loader = DataLoader(TensorDataset(data), batch_size=batch_size, sampler=shares)
     batches_per_epoch = math.ceil(data.shape[0] / batch_size) if loader is None else _length(loader)
     total = None if batches_per_epoch is None else batches_per_epoch * (epochs - start)
     step = start * (batches_per_epoch or 0)
-    with tqdm(total=total, unit="batch", disable=not progress, dynamic_ncols=True) as bar:
-        for epoch in range(start, epochs):
-            bar.set_description(f"epoch {epoch + 1}/{epochs}")
-            began = time.perf_counter()
-            gaps, iterations, seen, seen_rows = [], [], [], 0
-            for v, index in _batches(data, loader, batch_size, shuffling, with_index):
-                loss = objective(v, index=index) if with_index else objective(v)
-                optimizer.zero_grad(set_to_none=True)
-                loss.backward()
-                optimizer.step()
-                step += 1
-                monitors = objective.last
-                gaps.append(monitors.statistics_gap)
-                iterations.append(monitors.mean_field_iterations)
-                if validation is not None and seen_rows < len(validation):
-                    seen.append(v.detach())
-                    seen_rows += len(v)
-                bar.update()
-                bar.set_postfix(gap=f"{gaps[-1]:.4f}", refresh=False)
-                if callbacks and _run(
-                    callbacks, FitState("batch", epoch, step, objective, optimizer, scheduler, result.history)
+    runner = wrap_distributed(objective) if distributed else objective
+    try:
+        with tqdm(total=total, unit="batch", disable=not progress or rank != 0, dynamic_ncols=True) as bar:
+            for epoch in range(start, epochs):
+                bar.set_description(f"epoch {epoch + 1}/{epochs}")
+                began = time.perf_counter()
+                gaps, iterations, seen, seen_rows = [], [], [], 0
+                if isinstance(getattr(loader, "sampler", None), DistributedSampler):
+                    loader.sampler.set_epoch(epoch)
+                for v, index in _batches(data, loader, batch_size, shuffling, with_index):
+                    loss = runner(v, index=index) if with_index else runner(v)
+                    optimizer.zero_grad(set_to_none=True)
+                    loss.backward()
+                    optimizer.step()
+                    step += 1
+                    monitors = objective.last
+                    gaps.append(monitors.statistics_gap)
+                    iterations.append(monitors.mean_field_iterations)
+                    if validation is not None and seen_rows < len(validation):
+                        seen.append(v.detach())
+                        seen_rows += len(v)
+                    bar.update()
+                    bar.set_postfix(gap=f"{gaps[-1]:.4f}", refresh=False)
+                    if callbacks and _run(
+                        callbacks,
+                        FitState("batch", epoch, step, objective, optimizer, scheduler, result.history),
+                    ):
+                        return result  # stopped mid-epoch: no record, scheduler step or checkpoint for it
+                objective.check_parameters()
+                record = {
+                    "epoch": epoch + 1,
+                    "learning_rate": optimizer.param_groups[0]["lr"],
+                    "statistics_gap": sum(gaps) / max(1, len(gaps)),
+                    "free_energy_gap": _free_energy_gap(model, validation, seen),
+                    "mean_field_iterations": None
+                    if None in iterations
+                    else sum(iterations) / max(1, len(iterations)),
+                    "seconds": time.perf_counter() - began,
+                }
+                result.history.append(record)
+                if scheduler is not None:
+                    scheduler.step()
+                if checkpoint is not None:
+                    state = _checkpoint_state(result, epoch + 1, shuffling)
+                    if distributed:  # every rank's particles and generators, written by rank 0
+                        state["ranks"] = rank_states(objective)
+                    if rank == 0:
+                        save_checkpoint(state, checkpoint)
+                    if distributed:
+                        dist.barrier()
+                if record["free_energy_gap"] is not None:
+                    bar.set_postfix(
+                        gap=f"{record['statistics_gap']:.4f}", held_out_dF=f"{record['free_energy_gap']:.3f}"
+                    )
+                if _run(
+                    callbacks, FitState("epoch", epoch, step, objective, optimizer, scheduler, result.history)
                 ):
-                    return result  # stopped mid-epoch: no record, scheduler step or checkpoint for it
-            objective.check_parameters()
-            record = {
-                "epoch": epoch + 1,
-                "learning_rate": optimizer.param_groups[0]["lr"],
-                "statistics_gap": sum(gaps) / max(1, len(gaps)),
-                "free_energy_gap": _free_energy_gap(model, validation, seen),
-                "mean_field_iterations": None
-                if None in iterations
-                else sum(iterations) / max(1, len(iterations)),
-                "seconds": time.perf_counter() - began,
-            }
-            result.history.append(record)
-            if scheduler is not None:
-                scheduler.step()
-            if checkpoint is not None:
-                save_checkpoint(_checkpoint_state(result, epoch + 1, shuffling), checkpoint)
-            if record["free_energy_gap"] is not None:
-                bar.set_postfix(
-                    gap=f"{record['statistics_gap']:.4f}", held_out_dF=f"{record['free_energy_gap']:.3f}"
-                )
-            if _run(
-                callbacks, FitState("epoch", epoch, step, objective, optimizer, scheduler, result.history)
-            ):
-                break
+                    break
+    finally:
+        objective.process_group = None
     return result
 
 
@@ -325,8 +366,15 @@ def _checkpoint_state(result: FitResult, epochs_done: int, shuffling: torch.Gene
     }
 
 
-def _resume(path, result: FitResult, shuffling: torch.Generator | None) -> int:
+def _resume(path, result: FitResult, shuffling: torch.Generator | None, ranks: tuple[int, int] | None) -> int:
+    """Load checkpoint ``path`` into ``result`` (with ``ranks = (rank, world size)``, also this
+    rank's own buffers); returns the number of epochs done."""
     state = load_checkpoint(path)
+    if ranks is not None and len(state.get("ranks", ())) != ranks[1]:
+        raise ValueError(
+            f"resume={str(path)!r} holds the particles of {len(state.get('ranks', ()))} ranks, "
+            f"this run has {ranks[1]}: resume with as many ranks as the run that wrote it"
+        )
     if (state["scheduler"] is None) != (result.scheduler is None):
         raise ValueError(
             f"resume={str(path)!r} was written with a different scheduler setting than this call"
@@ -335,6 +383,8 @@ def _resume(path, result: FitResult, shuffling: torch.Generator | None) -> int:
     saved = [copy.deepcopy(result.objective.state_dict()), copy.deepcopy(result.optimizer.state_dict())]
     try:
         result.objective.load_state_dict(state["objective"])
+        if ranks is not None:
+            result.objective.load_state_dict(state["ranks"][ranks[0]], strict=False)
         result.optimizer.load_state_dict(state["optimizer"])
         if result.scheduler is not None:
             result.scheduler.load_state_dict(state["scheduler"])
