@@ -12,6 +12,7 @@ waiting in an all-reduce.
 
 from __future__ import annotations
 
+import warnings
 from typing import TYPE_CHECKING
 
 import torch
@@ -80,7 +81,11 @@ def wrap_distributed(
         raise TypeError(f"objective must be a TwoPhaseObjective, got {type(objective).__name__}")
     current_world()
     own = {name: buffer.detach().clone() for name, buffer in objective.named_buffers()}
-    wrapped = DistributedDataParallel(objective, broadcast_buffers=False, process_group=process_group)
+    with warnings.catch_warnings():
+        # Newer torch deprecates broadcast_buffers in favour of an option that still broadcasts at
+        # start-up; broadcast_buffers=False stays the way to keep buffers rank-local (torch >= 2.2).
+        warnings.filterwarnings("ignore", message=".*broadcast_buffers.*", category=FutureWarning)
+        wrapped = DistributedDataParallel(objective, broadcast_buffers=False, process_group=process_group)
     with torch.no_grad():
         for name, buffer in objective.named_buffers():
             buffer.copy_(own[name])

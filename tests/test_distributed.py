@@ -1,0 +1,269 @@
+"""Data-parallel training over torch.distributed (gloo, two processes on this machine).
+
+Sources of the checks:
+
+- equivalence: with equal shards, the average of the ranks' gradients is the gradient of one
+  process given both shards and both particle sets, since every statistic is a mean (mathematics);
+  the one-process reference here recomputes the data phase itself and takes the particles the
+  ranks drew;
+- resume: bit-identical continuation (common practice, no source);
+- failure: a rank that raises must stop the run with its error (common practice, no source).
+
+Every group of processes runs under a deadline and is terminated when it passes it.
+"""
+
+from __future__ import annotations
+
+import datetime
+import time
+from pathlib import Path
+
+import pytest
+import torch
+import torch.distributed as dist
+import torch.multiprocessing as mp
+
+import ebm_layers as el
+from ebm_layers.statistics import Statistics
+
+pytestmark = pytest.mark.skipif(not dist.is_available(), reason="this torch build has no torch.distributed")
+
+WORLD = 2
+DEADLINE = 90.0  # seconds for one group of processes, start-up included
+
+
+def run_ranks(worker, *args) -> None:
+    """Run ``worker(rank, *args)`` on ``WORLD`` spawned processes; terminate them past the deadline."""
+    context = mp.start_processes(worker, args=args, nprocs=WORLD, join=False, start_method="spawn")
+    ends = time.monotonic() + DEADLINE
+    try:
+        while not context.join(timeout=max(0.1, ends - time.monotonic())):
+            if time.monotonic() > ends:
+                raise TimeoutError(f"the distributed run did not finish within {DEADLINE} s")
+    finally:
+        for process in context.processes:
+            if process.is_alive():
+                process.terminate()
+                process.join(5)
+
+
+def join_group(rank: int, folder: str) -> None:
+    torch.set_num_threads(1)
+    dist.init_process_group(
+        "gloo",
+        init_method=f"file://{folder}/rendezvous",
+        rank=rank,
+        world_size=WORLD,
+        timeout=datetime.timedelta(seconds=60),
+    )
+
+
+# -- the averaged gradient is the gradient of one process with both shards ------------------------
+
+STEPS, SHARD = 5, 4
+
+
+def equivalence_setup() -> tuple[el.EnergyModel, torch.Tensor]:
+    model = el.dbm(6, 4, 3, generator=torch.Generator().manual_seed(0), dtype=torch.float64)
+    with torch.no_grad():
+        for coupling in model.couplings:
+            coupling.weight.mul_(8.0)  # far from independence, so the mean field iterates
+    data = torch.bernoulli(torch.full((STEPS * WORLD * SHARD, 6), 0.4, dtype=torch.float64),
+                           generator=torch.Generator().manual_seed(1))  # fmt: skip
+    return model, data
+
+
+def make_objective(model: el.EnergyModel, sampler: el.PersistentSampler) -> el.TwoPhaseObjective:
+    # Centering on: its offsets are running buffers that must follow all ranks' statistics.
+    mean_field = el.MeanField(model, tol=1e-13, max_iter=2000)
+    return el.TwoPhaseObjective(model, mean_field, sampler, centering=True, offset_decay=0.9)
+
+
+def equivalence_worker(rank: int, folder: str) -> None:
+    join_group(rank, folder)
+    model, data = equivalence_setup()
+    sampler = el.PersistentSampler(model, num_particles=3, generator=el.rank_generator(7))
+    objective = make_objective(model, sampler)
+    wrapped = el.wrap_distributed(objective)
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.05, momentum=0.5)
+    record = []
+    for step in range(STEPS):
+        start = (step * WORLD + rank) * SHARD
+        loss = wrapped(data[start : start + SHARD])
+        optimizer.zero_grad()
+        loss.backward()
+        particles = [x.clone() for x in sampler.particles]
+        gradients = [p.grad.clone() for p in model.parameters()]
+        optimizer.step()
+        parameters = [p.detach().clone() for p in model.parameters()]
+        record.append((particles, gradients, parameters, [c.clone() for c in objective.offsets]))
+    torch.save(record, Path(folder) / f"rank{rank}.pt")
+    dist.destroy_process_group()
+
+
+def reference_step(objective, sampler, shards: torch.Tensor, particles: list[torch.Tensor]) -> None:
+    """One process: the data phase on ``shards``, the model phase from the given ``particles``."""
+    sampler.statistics = lambda: Statistics.from_states(particles, objective.model.edges)
+    objective(shards).backward()
+
+
+def test_distributed_gradient_and_parameters_equal_one_process_with_both_shards(tmp_path):
+    run_ranks(equivalence_worker, str(tmp_path))
+    ranks = [torch.load(tmp_path / f"rank{r}.pt", weights_only=True) for r in range(WORLD)]
+    model, data = equivalence_setup()
+    sampler = el.PersistentSampler(model, num_particles=WORLD * 3, generator=torch.Generator().manual_seed(9))
+    objective = make_objective(model, sampler)
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.05, momentum=0.5)
+    for step in range(STEPS):
+        shards = data[step * WORLD * SHARD : (step + 1) * WORLD * SHARD]
+        particles = [torch.cat(layer) for layer in zip(*(r[step][0] for r in ranks))]
+        optimizer.zero_grad()
+        reference_step(objective, sampler, shards, particles)
+        for r in ranks:
+            _, gradients, _, _ = r[step]
+            for ours, theirs in zip(gradients, (p.grad for p in model.parameters())):
+                torch.testing.assert_close(ours, theirs, rtol=0, atol=1e-12)
+        optimizer.step()
+        for r in ranks:
+            _, _, parameters, offsets = r[step]
+            for ours, theirs in zip(parameters, model.parameters()):
+                torch.testing.assert_close(ours, theirs.detach(), rtol=0, atol=1e-12)
+            for ours, theirs in zip(offsets, objective.offsets):
+                torch.testing.assert_close(ours, theirs, rtol=0, atol=1e-12)
+    # The ranks drew their own particles: no broadcast made them equal.
+    assert not torch.equal(ranks[0][-1][0][0], ranks[1][-1][0][0])
+    # Negative control: one rank's shard and particles alone give another gradient.
+    model, data = equivalence_setup()
+    sampler = el.PersistentSampler(model, num_particles=3, generator=torch.Generator().manual_seed(9))
+    alone = make_objective(model, sampler)
+    reference_step(alone, sampler, data[:SHARD], ranks[0][0][0])
+    difference = max(float((p.grad - g).abs().max()) for p, g in zip(model.parameters(), ranks[0][0][1]))
+    assert difference > 1e-3
+
+
+# -- fit(distributed=True): rank-local particles, bit-identical resume ---------------------------
+
+
+def fit_worker(rank: int, folder: str) -> None:
+    join_group(rank, folder)
+    data = torch.bernoulli(torch.full((120, 10), 0.3), generator=torch.Generator().manual_seed(3))
+
+    def train(checkpoint: str, resume: str | None = None, stop_after: int | None = None) -> el.FitResult:
+        def interrupt(state: el.FitState) -> None:  # as if the run had been killed after an epoch
+            state.stop = state.event == "epoch" and state.epoch + 1 == stop_after
+
+        model = el.rbm(10, 6, generator=torch.Generator().manual_seed(4))
+        return el.fit(
+            model,
+            data,
+            epochs=3,
+            batch_size=10,
+            progress=False,
+            checkpoint=Path(folder) / checkpoint,
+            resume=resume,
+            callbacks=[interrupt],
+            distributed=True,
+            generator=torch.Generator().manual_seed(5),
+        )
+
+    for tag, result in (
+        ("whole", train("whole.pt")),
+        ("part", train("part.pt", stop_after=2)),
+        ("resumed", train("resumed.pt", resume=str(Path(folder) / "part.pt"))),
+    ):
+        state = {k: v.clone() for k, v in result.objective.state_dict().items()}
+        torch.save(state, Path(folder) / f"{tag}{rank}.pt")
+    dist.destroy_process_group()
+
+
+def test_distributed_fit_keeps_rank_particles_and_resumes_each_rank_bit_identically(tmp_path):
+    run_ranks(fit_worker, str(tmp_path))
+    load = lambda name: torch.load(tmp_path / name, weights_only=True)  # noqa: E731
+    for rank in range(WORLD):
+        whole, resumed = load(f"whole{rank}.pt"), load(f"resumed{rank}.pt")
+        assert whole.keys() == resumed.keys()
+        for key in whole:
+            assert torch.equal(whole[key], resumed[key]), (rank, key)
+    first, second = load("whole0.pt"), load("whole1.pt")
+    assert torch.equal(first["model.couplings.0.weight"], second["model.couplings.0.weight"])
+    assert not torch.equal(first["negative.particles_0"], second["negative.particles_0"])
+    assert not torch.equal(first["negative.generator_state"], second["negative.generator_state"])
+    checkpoint = el.load_checkpoint(tmp_path / "whole.pt")
+    assert len(checkpoint["ranks"]) == WORLD and checkpoint["epoch"] == 3
+    for rank in range(WORLD):
+        assert torch.equal(
+            checkpoint["ranks"][rank]["negative.particles_0"], load(f"whole{rank}.pt")["negative.particles_0"]
+        )
+    # Negative control: a resume that ignored the per-rank states would give rank 1 rank 0's particles.
+    assert not torch.equal(
+        checkpoint["ranks"][0]["negative.particles_0"], checkpoint["ranks"][1]["negative.particles_0"]
+    )
+
+
+# -- a rank that fails stops the run --------------------------------------------------------------
+
+
+def diverging_worker(rank: int, folder: str) -> None:
+    join_group(rank, folder)
+    model = el.rbm(8, 4, generator=torch.Generator().manual_seed(0))
+    sampler = el.PersistentSampler(model, num_particles=5, generator=el.rank_generator(1))
+    objective = el.TwoPhaseObjective(model, el.MeanField(model), sampler)
+    if rank == 1:  # this rank's model statistics turn non-finite at the third step
+        honest, calls = sampler.statistics, []
+
+        def poisoned() -> Statistics:
+            calls.append(1)
+            stats = honest()
+            return Statistics([m * float("nan") if len(calls) >= 3 else m for m in stats.means], stats.pairs)
+
+        sampler.statistics = poisoned
+    wrapped = el.wrap_distributed(objective)
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.1)
+    data = torch.bernoulli(torch.full((4, 8), 0.5), generator=torch.Generator().manual_seed(2))
+    try:
+        for _ in range(10):
+            loss = wrapped(data)
+            optimizer.zero_grad()
+            loss.backward()
+            optimizer.step()
+    except FloatingPointError as error:
+        (Path(folder) / f"raised{rank}.txt").write_text(str(error))
+        raise
+
+
+def test_distributed_divergence_on_one_rank_stops_every_rank_with_the_error(tmp_path):
+    started = time.monotonic()
+    with pytest.raises(mp.ProcessRaisedException, match="FloatingPointError"):
+        run_ranks(diverging_worker, str(tmp_path))
+    assert time.monotonic() - started < DEADLINE
+    # Both ranks raised the guard's error themselves (rank 0 was not left waiting in an all-reduce).
+    assert "not finite on this rank" in (tmp_path / "raised1.txt").read_text()
+    assert "not finite on another rank" in (tmp_path / "raised0.txt").read_text()
+
+
+def failing_worker(rank: int, folder: str) -> None:
+    join_group(rank, folder)
+    model = el.rbm(8, 4, generator=torch.Generator().manual_seed(0))
+    wrapped = el.wrap_distributed(el.TwoPhaseObjective(model))
+    data = torch.full((4, 8), float("nan") if rank == 1 else 0.5)  # rank 1 gets bad data
+    wrapped(data).backward()
+
+
+def test_distributed_run_stops_when_one_rank_raises_any_error(tmp_path):
+    started = time.monotonic()
+    with pytest.raises(mp.ProcessRaisedException, match="ValueError: v holds"):
+        run_ranks(failing_worker, str(tmp_path))
+    assert time.monotonic() - started < 30  # well before the process group's own timeout
+
+
+def test_distributed_helpers_need_an_initialised_process_group():
+    if dist.is_initialized():
+        pytest.skip("a process group is already initialised in this process")
+    with pytest.raises(ValueError, match="init_process_group"):
+        el.wrap_distributed(el.TwoPhaseObjective(el.rbm(4, 2)))
+    with pytest.raises(ValueError, match="init_process_group"):
+        el.fit(el.rbm(4, 2), torch.ones(4, 4), epochs=1, distributed=True, progress=False)
+    with pytest.raises(TypeError, match="distributed must be True or False"):
+        el.fit(el.rbm(4, 2), torch.ones(4, 4), epochs=1, distributed="yes", progress=False)
+    with pytest.raises(TypeError, match="objective must be a TwoPhaseObjective"):
+        el.wrap_distributed(el.rbm(4, 2))
