@@ -16,7 +16,7 @@ noise. Every type is a mode of the data. The script
 5. prints one table and saves ``samples.png``, ``filters.png``, ``training.png`` (needs matplotlib),
    the checkpoint ``parts_markings.pt`` and ``report.json`` in ``--out``.
 
-About 3 minutes on 2 cores with the defaults:
+About 2 minutes on 2 cores with the defaults:
 
     python examples/parts_markings.py [--epochs 40] [--seed 0] [--out out] [--no-progress]
 """

@@ -14,7 +14,11 @@ Every group of processes runs under a deadline and is terminated when it passes 
 
 from __future__ import annotations
 
+import contextlib
 import datetime
+import io
+import os
+import runpy
 import time
 from pathlib import Path
 
@@ -254,6 +258,26 @@ def test_distributed_run_stops_when_one_rank_raises_any_error(tmp_path):
     with pytest.raises(mp.ProcessRaisedException, match="ValueError: v holds"):
         run_ranks(failing_worker, str(tmp_path))
     assert time.monotonic() - started < 30  # well before the process group's own timeout
+
+
+def example_worker(rank: int, folder: str) -> None:
+    os.environ.update(RANK=str(rank), LOCAL_RANK=str(rank), WORLD_SIZE=str(WORLD))  # as torchrun would
+    example = runpy.run_path(str(Path(__file__).resolve().parents[1] / "examples" / "distributed.py"))
+    arguments = ["--epochs", "1", "--no-progress", "--out", folder, "--init-method", f"file://{folder}/meet"]
+    with contextlib.redirect_stdout(io.StringIO()) as printed:
+        example["main"](arguments)
+    (Path(folder) / f"printed{rank}.txt").write_text(printed.getvalue())
+
+
+def test_distributed_example_runs_on_two_ranks(tmp_path):
+    # A smoke test (common practice, no source): the example trains on two ranks and rank 0 prints
+    # every rank's line; the ranks share their parameters.
+    run_ranks(example_worker, str(tmp_path))
+    table = (tmp_path / "printed0.txt").read_text().splitlines()
+    assert table[0].startswith("2 ranks") and len(table) == 5
+    assert len({line.split()[1] for line in table[2:4]}) == 1  # the same sum of weights on both ranks
+    assert (tmp_path / "printed1.txt").read_text() == ""
+    assert (tmp_path / "distributed.pt").exists()
 
 
 def test_distributed_helpers_need_an_initialised_process_group():
