@@ -7,7 +7,7 @@ the gradient at every step. Each side is warmed up by one untimed epoch; through
 (over all ranks) per second of wall time. Scaling efficiency = two-process throughput / (2 x
 one-process throughput): 1.0 would mean the all-reduce and the second process cost nothing.
 
-    python benchmarks/distributed.py [--examples 6000] [--epochs 1] [--sizes 784 500]
+    python benchmarks/distributed.py [--examples 20000] [--epochs 1] [--sizes 784 500]
 """
 
 from __future__ import annotations
@@ -57,7 +57,7 @@ def main() -> None:
     parser = argparse.ArgumentParser(
         description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter
     )
-    parser.add_argument("--examples", type=int, default=6000)
+    parser.add_argument("--examples", type=int, default=20_000)
     parser.add_argument("--epochs", type=int, default=1)
     parser.add_argument("--sizes", type=int, nargs=2, default=[784, 500])
     args = parser.parse_args()

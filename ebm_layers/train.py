@@ -19,7 +19,7 @@ from pathlib import Path
 import torch
 import torch.distributed as dist
 from torch import Tensor
-from torch.utils.data import DataLoader, DistributedSampler, RandomSampler, TensorDataset
+from torch.utils.data import DataLoader, DistributedSampler, RandomSampler
 from tqdm.auto import tqdm
 
 from ._checks import check_batch, check_count, check_model, check_size
@@ -241,12 +241,13 @@ def fit(
     elif loader is None and _is_fresh(model):
         model.init_visible_bias_from(data)
 
-    if distributed and loader is None:  # this rank's share of every epoch
-        shares = DistributedSampler(
-            TensorDataset(data), world, rank, seed=generator.initial_seed(), drop_last=True
-        )
-        loader = DataLoader(TensorDataset(data), batch_size=batch_size, sampler=shares)
-    batches_per_epoch = math.ceil(data.shape[0] / batch_size) if loader is None else _length(loader)
+    shares = None  # with distributed tensor data: this rank's share of every epoch
+    if distributed and loader is None:
+        shares = DistributedSampler(data, world, rank, seed=generator.initial_seed(), drop_last=True)
+    if loader is not None:
+        batches_per_epoch = _length(loader)
+    else:
+        batches_per_epoch = math.ceil((data.shape[0] if shares is None else len(shares)) / batch_size)
     total = None if batches_per_epoch is None else batches_per_epoch * (epochs - start)
     step = start * (batches_per_epoch or 0)
     runner = wrap_distributed(objective) if distributed else objective
@@ -256,9 +257,10 @@ def fit(
                 bar.set_description(f"epoch {epoch + 1}/{epochs}")
                 began = time.perf_counter()
                 gaps, iterations, seen, seen_rows = [], [], [], 0
-                if isinstance(getattr(loader, "sampler", None), DistributedSampler):
-                    loader.sampler.set_epoch(epoch)
-                for v, index in _batches(data, loader, batch_size, shuffling, with_index):
+                for sampler in (shares, getattr(loader, "sampler", None)):
+                    if isinstance(sampler, DistributedSampler):
+                        sampler.set_epoch(epoch)
+                for v, index in _batches(data, loader, batch_size, shuffling, with_index, shares):
                     loss = runner(v, index=index) if with_index else runner(v)
                     optimizer.zero_grad(set_to_none=True)
                     loss.backward()
@@ -399,11 +401,18 @@ def _resume(path, result: FitResult, shuffling: torch.Generator | None, ranks: t
     return state["epoch"]
 
 
-def _batches(data, loader, batch_size, shuffling, with_index) -> Iterable[tuple[Tensor, Tensor | None]]:
-    """One epoch of ``(v, index)`` batches (``index`` None unless data-specific particles need it)."""
+def _batches(
+    data, loader, batch_size, shuffling, with_index, shares=None
+) -> Iterable[tuple[Tensor, Tensor | None]]:
+    """One epoch of ``(v, index)`` batches (``index`` None unless data-specific particles need it);
+    with ``shares`` (a ``DistributedSampler`` over tensor data) only this rank's rows, in its order."""
     if loader is None:
-        order = torch.randperm(data.shape[0], generator=shuffling)
-        for start in range(0, data.shape[0], batch_size):
+        order = (
+            torch.randperm(data.shape[0], generator=shuffling)
+            if shares is None
+            else torch.tensor(list(shares))
+        )
+        for start in range(0, len(order), batch_size):
             index = order[start : start + batch_size]
             yield data[index], index if with_index else None
         return

@@ -166,6 +166,11 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
             "scikit-learn",
         ),
         (
+            "distributed.py",
+            "--examples 400 --sizes 20 10".split(),
+            "scaling efficiency",
+        ),
+        (
             "digits_features.py",
             "--splits 0 --epochs 1 --pretrain-epochs 1 --finetune-epochs 1 --ais-betas 10 --compare".split(),
             "fine-tuned:",
