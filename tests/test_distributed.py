@@ -29,6 +29,7 @@ import torch.multiprocessing as mp
 
 import ebm_layers as el
 from ebm_layers.statistics import Statistics
+from tests.conftest import assert_unchanged, snapshot
 
 pytestmark = pytest.mark.skipif(not dist.is_available(), reason="this torch build has no torch.distributed")
 
@@ -291,3 +292,40 @@ def test_distributed_helpers_need_an_initialised_process_group():
         el.fit(el.rbm(4, 2), torch.ones(4, 4), epochs=1, distributed="yes", progress=False)
     with pytest.raises(TypeError, match="objective must be a TwoPhaseObjective"):
         el.wrap_distributed(el.rbm(4, 2))
+
+
+@pytest.fixture
+def world_of_one(tmp_path):
+    """A process group of this process alone (gloo), for the checks that need one."""
+    if dist.is_initialized():
+        pytest.skip("a process group is already initialised in this process")
+    dist.init_process_group("gloo", init_method=f"file://{tmp_path}/meet", rank=0, world_size=1)
+    try:
+        yield
+    finally:
+        dist.destroy_process_group()
+
+
+def test_distributed_fit_refuses_what_it_cannot_shard(world_of_one, tmp_path):
+    data = torch.bernoulli(torch.full((20, 6), 0.5), generator=torch.Generator().manual_seed(0))
+    model = el.rbm(6, 3, generator=torch.Generator().manual_seed(1))
+    before = snapshot(model)
+    particles = el.DataParticles(model, num_examples=20)
+    with pytest.raises(ValueError, match="needs MeanField for the data phase"):
+        el.fit(
+            model, data, objective=el.TwoPhaseObjective(model, particles), distributed=True, progress=False
+        )
+    loader = torch.utils.data.DataLoader(data, batch_size=5, shuffle=True)
+    with pytest.raises(ValueError, match="needs a DistributedSampler, got RandomSampler"):
+        el.fit(model, loader, distributed=True, progress=False)
+    el.fit(model, data, epochs=1, checkpoint=tmp_path / "plain.pt", progress=False)  # not distributed
+    after_plain = snapshot(model)
+    with pytest.raises(ValueError, match="holds the particles of 0 ranks, this run has 1"):
+        el.fit(model, data, epochs=2, resume=tmp_path / "plain.pt", distributed=True, progress=False)
+    assert_unchanged(model, after_plain)
+    assert not all(torch.equal(a, b) for a, b in zip(before.values(), after_plain.values()))
+    with pytest.raises(TypeError, match="seed must be an int"):
+        el.rank_generator(1.5)
+    # On one rank the distributed path trains like any other run and keeps the objective usable.
+    result = el.fit(model, data, epochs=1, distributed=True, progress=False)
+    assert result.objective.process_group is None and len(result.history) == 1
