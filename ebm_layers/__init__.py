@@ -3,7 +3,17 @@ of binary units) as composable ``torch.nn`` modules, on CPU."""
 
 from . import datasets
 from .couplings import DenseCoupling, LateralCoupling
-from .diagnostics import ModeOccupancy, mode_occupancy, nearest_template
+from .diagnostics import (
+    ModeOccupancy,
+    ModeTracker,
+    autocorrelation_time,
+    effective_sample_size,
+    mode_occupancy,
+    mode_switching_rate,
+    nearest_template,
+    potential_scale_reduction,
+    sampler_traces,
+)
 from .distributed import rank_generator, rank_states, wrap_distributed
 from .enumeration import ExactStatistics
 from .features import ConcatenatedLayers, FeatureExtractor, feedforward_network
@@ -52,6 +62,7 @@ __all__ = [
     "LogLikelihood",
     "MeanField",
     "ModeOccupancy",
+    "ModeTracker",
     "Monitors",
     "PersistentSampler",
     "SplitMetrics",
@@ -60,8 +71,10 @@ __all__ = [
     "UpdateSchedule",
     "ais_log_partition",
     "annealing_schedule",
+    "autocorrelation_time",
     "datasets",
     "dbm",
+    "effective_sample_size",
     "evaluate",
     "exact_log_likelihood",
     "exact_log_partition",
@@ -72,7 +85,9 @@ __all__ = [
     "load_checkpoint",
     "log_likelihood",
     "mode_occupancy",
+    "mode_switching_rate",
     "nearest_template",
+    "potential_scale_reduction",
     "pretrain",
     "pseudo_log_likelihood",
     "rank_generator",
@@ -80,6 +95,7 @@ __all__ = [
     "rbm",
     "reconstruction_error",
     "reverse_ais_log_likelihood",
+    "sampler_traces",
     "save_checkpoint",
     "save_image_grid",
     "save_training_plot",

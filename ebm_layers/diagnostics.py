@@ -1,4 +1,6 @@
-"""Diagnostics of what persistent chains and samples cover: the share of samples in each mode."""
+"""Diagnostics of persistent chains: how fast scalar traces decorrelate (integrated autocorrelation
+time, effective sample size, between- vs within-chain variance), and which modes samples cover
+(the share of samples in each mode, and how often particles switch mode)."""
 
 from __future__ import annotations
 
@@ -7,10 +9,22 @@ from dataclasses import dataclass
 
 import torch
 from torch import Tensor
+from tqdm.auto import tqdm
 
 from ._checks import check_size
+from .sampling import PersistentSampler
 
-__all__ = ["ModeOccupancy", "mode_occupancy", "nearest_template"]
+__all__ = [
+    "ModeOccupancy",
+    "ModeTracker",
+    "autocorrelation_time",
+    "effective_sample_size",
+    "mode_occupancy",
+    "mode_switching_rate",
+    "nearest_template",
+    "potential_scale_reduction",
+    "sampler_traces",
+]
 
 Assignment = Callable[[Tensor], Tensor]
 
@@ -154,3 +168,163 @@ def _modes(name: str, rows: Tensor, assign: Assignment) -> Tensor:
     if modes.numel() and int(modes.min()) < 0:
         raise ValueError(f"assign returned a negative mode ({int(modes.min())}) for {name}")
     return modes.long()
+
+
+# -- scalar traces --------------------------------------------------------------------------------
+
+
+def _check_trace(trace: Tensor, minimum: int = 4) -> Tensor:
+    """``trace`` as a float64 ``(T, C)`` tensor (a ``(T,)`` trace is one chain)."""
+    if not isinstance(trace, Tensor):
+        raise TypeError(f"trace must be a torch.Tensor, got {type(trace).__name__}")
+    trace = trace.detach().to(torch.float64)
+    trace = trace[:, None] if trace.ndim == 1 else trace
+    if trace.ndim != 2 or trace.shape[0] < minimum or trace.shape[1] == 0:
+        raise ValueError(
+            f"trace must be (T, C) with T >= {minimum} records and C >= 1 chains, got {tuple(trace.shape)}"
+        )
+    if not bool(torch.isfinite(trace).all()):
+        raise ValueError("trace holds non-finite values")
+    return trace
+
+
+def _autocovariance(trace: Tensor) -> Tensor:
+    """Autocovariance ``(T, C)`` of each chain at lags 0..T-1 (each around its own mean; divided by
+    T, the usual biased estimate that keeps the sequence positive definite), by FFT."""
+    length = trace.shape[0]
+    centred = trace - trace.mean(0)
+    spectrum = torch.fft.rfft(centred, n=2 * length, dim=0)
+    return torch.fft.irfft(spectrum * spectrum.conj(), n=2 * length, dim=0)[:length] / length
+
+
+def _initial_positive_sequence(autocovariance: Tensor) -> Tensor:
+    """``tau = -1 + 2 sum_m Gamma_m / gamma_0`` per column with ``Gamma_m = gamma_2m + gamma_2m+1``
+    summed while positive and made non-increasing: Geyer's initial monotone sequence estimator
+    ("Practical Markov Chain Monte Carlo", Statistical Science, 1992)."""
+    length = autocovariance.shape[0] // 2 * 2
+    pairs = autocovariance[:length].reshape(length // 2, 2, -1).sum(1)  # (M, C): Gamma_m
+    positive = torch.cumprod((pairs > 0).to(pairs.dtype), dim=0)  # 1 until the first Gamma_m <= 0
+    monotone = torch.cummin(pairs.clamp_min(0.0), dim=0).values
+    variance = -autocovariance[0] + 2 * (monotone * positive).sum(0)
+    return (variance / autocovariance[0]).clamp_min(1.0 / autocovariance.shape[0])
+
+
+def autocorrelation_time(trace: Tensor, *, pooled: bool = False) -> Tensor:
+    """Integrated autocorrelation time of each chain's scalar trace, in records.
+
+    ``tau = 1 + 2 sum_k rho_k``: a chain of ``T`` records carries about ``T / tau`` independent
+    samples' worth of information. Estimated by Geyer's initial monotone sequence ("Practical
+    Markov Chain Monte Carlo", Statistical Science, 1992). A constant chain gets ``tau = 1``. Chains
+    that each sit in their own mode can look fast-mixing here: check
+    :func:`potential_scale_reduction` too.
+
+    Args:
+        trace: ``(T, C)`` ``C`` chains of ``T`` records each (or ``(T,)``, one chain).
+        pooled: one value from the chains' averaged autocovariance instead of one per chain.
+
+    Returns:
+        ``(C,)`` float64 (``pooled``: a 0-d tensor).
+    """
+    trace = _check_trace(trace)
+    autocovariance = _autocovariance(trace)
+    if pooled:
+        return _initial_positive_sequence(autocovariance.mean(1, keepdim=True))[0]
+    constant = autocovariance[0] <= 0
+    tau = _initial_positive_sequence(torch.where(constant, 1.0, autocovariance))
+    return torch.where(constant, 1.0, tau)
+
+
+def effective_sample_size(trace: Tensor, *, pooled: bool = False) -> Tensor:
+    """``T / tau`` per chain (``pooled``: ``C T / tau`` from the averaged autocovariance), float64."""
+    trace = _check_trace(trace)
+    tau = autocorrelation_time(trace, pooled=pooled)
+    return trace.numel() / tau if pooled else trace.shape[0] / tau
+
+
+def potential_scale_reduction(trace: Tensor) -> float:
+    """Between- against within-chain variance of a scalar trace ``(T, C)``, ``C >= 2`` chains:
+    ``sqrt(((T - 1) / T W + B / T) / W)`` ("Inference from Iterative Simulation Using Multiple
+    Sequences", Statistical Science, 1992). Near 1 when the chains sample the same distribution;
+    well above 1 (say 1.1) when they have not mixed, e.g. each stuck in its own mode."""
+    trace = _check_trace(trace)
+    length, chains = trace.shape
+    if chains < 2:
+        raise ValueError(f"potential_scale_reduction needs at least 2 chains, got {chains}")
+    within = trace.var(0).mean()
+    between = length * trace.mean(0).var()
+    if within == 0:
+        return 1.0 if between == 0 else float("inf")
+    return float((((length - 1) / length * within + between / length) / within).sqrt())
+
+
+@torch.no_grad()
+def sampler_traces(
+    sampler: PersistentSampler, num_records: int, *, progress: bool = False
+) -> dict[str, Tensor]:
+    """Advance ``sampler`` ``num_records`` times (``sampler.sweeps`` sweeps each) and record scalar
+    traces of every particle: ``"energy"``, ``"free_energy"`` (when the model has a closed form)
+    and ``"mean_<i>"`` (the mean state of layer ``i``). Each is a ``(num_records, P)`` float64
+    tensor, ready for :func:`autocorrelation_time`. The particles stay advanced."""
+    if not isinstance(sampler, PersistentSampler):
+        raise TypeError(f"sampler must be a PersistentSampler, got {type(sampler).__name__}")
+    num_records = check_size("num_records", num_records)
+    model = sampler.model
+    records: dict[str, list[Tensor]] = {}
+    for _ in tqdm(range(num_records), desc="tracing", unit="record", disable=not progress):
+        states = sampler()
+        values = {"energy": model.energy(states)}
+        if model.has_free_energy:
+            values["free_energy"] = model.free_energy(states[0])
+        values.update({f"mean_{i}": x.mean(1) for i, x in enumerate(states)})
+        for name, value in values.items():
+            records.setdefault(name, []).append(value.to(torch.float64))
+    return {name: torch.stack(values) for name, values in records.items()}
+
+
+# -- modes over time ------------------------------------------------------------------------------
+
+
+def mode_switching_rate(modes: Tensor) -> float:
+    """Share of particles whose mode changes from one record to the next, averaged over records:
+    ``modes`` is ``(T, P)`` integer modes of ``P`` particles at ``T >= 2`` successive records."""
+    if not isinstance(modes, Tensor) or modes.ndim != 2 or modes.shape[0] < 2:
+        shape = tuple(modes.shape) if isinstance(modes, Tensor) else type(modes).__name__
+        raise ValueError(f"modes must be a (T, P) tensor with T >= 2 records, got {shape}")
+    return float((modes[1:] != modes[:-1]).double().mean())
+
+
+class ModeTracker:
+    """A :func:`fit` callback that follows the persistent particles' modes during training.
+
+    After every batch it assigns the particles' visible states to modes (``assign``, as in
+    :func:`mode_occupancy`) and counts the particles that changed mode since the previous batch;
+    after every epoch it appends to :attr:`history` a record with ``epoch``, ``shares`` (the
+    particles' share per mode at the epoch's end, a list) and ``switching_rate`` (mean share of
+    particles changing mode per update during the epoch).
+    """
+
+    def __init__(self, assign: Assignment, num_modes: int) -> None:
+        if not callable(assign):
+            raise TypeError(f"assign must be callable, got {type(assign).__name__}")
+        self.assign, self.num_modes = assign, check_size("num_modes", num_modes)
+        self.history: list[dict] = []
+        self._previous: Tensor | None = None
+        self._switches: list[float] = []
+
+    def __call__(self, state) -> None:
+        particles = getattr(state.objective.negative, "particles", None)
+        if particles is None:
+            raise ValueError("ModeTracker needs persistent particles (a PersistentSampler negative phase)")
+        if state.event == "batch":
+            modes = _modes("particles", particles[0], self.assign)
+            if self._previous is not None:
+                self._switches.append(float((modes != self._previous).double().mean()))
+            self._previous = modes
+            return
+        modes = (
+            self._previous if self._previous is not None else _modes("particles", particles[0], self.assign)
+        )
+        shares = torch.bincount(modes, minlength=self.num_modes).double() / modes.numel()
+        rate = sum(self._switches) / len(self._switches) if self._switches else 0.0
+        self.history.append({"epoch": state.epoch + 1, "shares": shares.tolist(), "switching_rate": rate})
+        self._switches = []
