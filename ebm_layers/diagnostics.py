@@ -4,6 +4,7 @@ time, effective sample size, between- vs within-chain variance), and which modes
 
 from __future__ import annotations
 
+import copy
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
@@ -11,7 +12,8 @@ import torch
 from torch import Tensor
 from tqdm.auto import tqdm
 
-from ._checks import check_size
+from ._checks import check_batch, check_size
+from ._random import resolve_generator
 from .sampling import PersistentSampler
 
 __all__ = [
@@ -20,6 +22,7 @@ __all__ = [
     "autocorrelation_time",
     "effective_sample_size",
     "mode_occupancy",
+    "mixing_during_learning",
     "mode_switching_rate",
     "nearest_template",
     "potential_scale_reduction",
@@ -328,3 +331,89 @@ class ModeTracker:
         rate = sum(self._switches) / len(self._switches) if self._switches else 0.0
         self.history.append({"epoch": state.epoch + 1, "shares": shares.tolist(), "switching_rate": rate})
         self._switches = []
+
+
+def mixing_during_learning(
+    objective,
+    optimizer: torch.optim.Optimizer,
+    data: Tensor,
+    assign: Assignment,
+    *,
+    updates: int = 100,
+    snapshots: int = 3,
+    batch_size: int = 10,
+    generator: torch.Generator | None = None,
+) -> list[dict]:
+    """How much faster persistent particles switch modes while the weights learn than with the
+    same weights frozen.
+
+    For each of ``snapshots`` successive stretches of training: copy the model and the particles,
+    then (a) train ``updates`` steps of ``objective`` with ``optimizer`` on shuffled batches of
+    ``data``, recording the particles' modes after every update, and (b) from the copied
+    particles, run the frozen copy's chains for as many updates of the sampler (the same sweeps
+    each), recording their modes. The learning run continues from where (a) ended, so the
+    snapshots follow training. Every record holds ``learning`` and ``frozen`` (modes switched per
+    particle and update, :func:`mode_switching_rate`), their ``ratio``, and the ``(updates + 1, P)``
+    mode sequences ``learning_modes`` and ``frozen_modes``. The frozen run never touches
+    ``objective``'s parameters or particles.
+
+    Args:
+        objective: a :class:`~ebm_layers.objective.TwoPhaseObjective` with a persistent sampler.
+        optimizer: the optimizer over the model's parameters (it is stepped).
+        data: ``(N, n_0)`` training data.
+        assign: rows to modes, as in :func:`mode_occupancy`.
+        updates, snapshots, batch_size: as above.
+        generator: the generator of the shuffling and of the frozen copies' chains.
+    """
+    sampler = objective.negative
+    if not isinstance(sampler, PersistentSampler):
+        raise TypeError(f"objective.negative must be a PersistentSampler, got {type(sampler).__name__}")
+    if not isinstance(optimizer, torch.optim.Optimizer):
+        raise TypeError(f"optimizer must be a torch.optim.Optimizer, got {type(optimizer).__name__}")
+    data = check_batch("data", data, sampler.model.sizes[0], dtype=sampler.model.dtype)
+    updates, snapshots = check_size("updates", updates), check_size("snapshots", snapshots)
+    batch_size = check_size("batch_size", batch_size)
+    generator = resolve_generator(generator)
+    records = []
+    for snapshot in range(snapshots):
+        frozen = _frozen_copy(sampler, generator)
+        learning_modes = [_modes("particles", sampler.particles[0], assign)]
+        order = torch.randint(0, data.shape[0], (updates, batch_size), generator=generator)
+        for rows in order:
+            loss = objective(data[rows])
+            optimizer.zero_grad()
+            loss.backward()
+            optimizer.step()
+            learning_modes.append(_modes("particles", sampler.particles[0], assign))
+        frozen_modes = [_modes("particles", frozen.particles[0], assign)]
+        for _ in range(updates):
+            frozen_modes.append(_modes("particles", frozen()[0], assign))
+        learning, still = (mode_switching_rate(torch.stack(m)) for m in (learning_modes, frozen_modes))
+        records.append(
+            {
+                "snapshot": snapshot,
+                "learning": learning,
+                "frozen": still,
+                "ratio": learning / still if still > 0 else float("inf"),
+                "learning_modes": torch.stack(learning_modes),
+                "frozen_modes": torch.stack(frozen_modes),
+            }
+        )
+    return records
+
+
+def _frozen_copy(sampler: PersistentSampler, generator: torch.Generator) -> PersistentSampler:
+    """A sampler on a detached copy of ``sampler``'s model, holding copies of its particles and
+    drawing from a generator seeded from ``generator``."""
+    model = copy.deepcopy(sampler.model).requires_grad_(False)
+    seed = int(torch.randint(0, 2**62, (), generator=generator))
+    frozen = PersistentSampler(
+        model,
+        num_particles=sampler.num_particles,
+        sweeps=sampler.sweeps,
+        generator=torch.Generator().manual_seed(seed),
+    )
+    with torch.no_grad():
+        for mine, theirs in zip(frozen.particles, sampler.particles):
+            mine.copy_(theirs)
+    return frozen

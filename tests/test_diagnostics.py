@@ -107,3 +107,54 @@ def test_mode_switching_rate_and_tracker():
 def test_bad_diagnostics_arguments(call, error, fragment):
     with pytest.raises(error, match=fragment):
         call()
+
+
+def test_mixing_during_learning_compares_the_right_chains():
+    g = torch.Generator().manual_seed(2)
+    images, _ = el.datasets.parts_markings(200, generator=g)
+    model = el.rbm(144, 20, generator=g)
+    sampler = el.PersistentSampler(model, num_particles=30, generator=g)
+    objective = el.TwoPhaseObjective(model, el.MeanField(model), sampler)
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.05)
+    assign = el.nearest_template(el.datasets.marking_templates())
+    start_particles = sampler.particles[0].clone()
+    records = el.mixing_during_learning(
+        objective, optimizer, images, assign, updates=6, snapshots=2, generator=g
+    )
+    assert [r["snapshot"] for r in records] == [0, 1]
+    first, second = records
+    # Both runs start from the particles at the snapshot; the second snapshot starts where the
+    # first learning run ended (not where its frozen run did).
+    assert torch.equal(first["learning_modes"][0], assign(start_particles))
+    assert torch.equal(first["frozen_modes"][0], first["learning_modes"][0])
+    assert torch.equal(second["learning_modes"][0], first["learning_modes"][-1])
+    assert torch.equal(second["frozen_modes"][0], second["learning_modes"][0])
+    assert torch.equal(second["learning_modes"][-1], assign(sampler.particles[0]))
+    for record in records:
+        assert record["learning_modes"].shape == record["frozen_modes"].shape == (7, 30)
+        assert record["learning"] == el.mode_switching_rate(record["learning_modes"])
+        assert record["frozen"] == el.mode_switching_rate(record["frozen_modes"])
+
+
+def test_mixing_during_learning_leaves_the_frozen_weights_alone(monkeypatch):
+    g = torch.Generator().manual_seed(3)
+    images, _ = el.datasets.parts_markings(100, generator=g)
+    model = el.rbm(144, 10, generator=g)
+    objective = el.TwoPhaseObjective(model, el.MeanField(model), el.PersistentSampler(model, 10, generator=g))
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.05)
+    before = [p.detach().clone() for p in model.parameters()]
+    copies = []
+    original = el.diagnostics._frozen_copy
+
+    def spy(sampler, generator):
+        frozen = original(sampler, generator)
+        copies.append((frozen.model, [p.detach().clone() for p in frozen.model.parameters()]))
+        return frozen
+
+    monkeypatch.setattr(el.diagnostics, "_frozen_copy", spy)
+    el.mixing_during_learning(objective, optimizer, images, lambda x: x[:, 0].long(), updates=3, snapshots=1)
+    ((frozen_model, at_copy),) = copies
+    assert frozen_model is not model
+    assert all(torch.equal(a, b) for a, b in zip(before, at_copy))  # a copy of the snapshot's weights
+    assert all(torch.equal(a, b) for a, b in zip(at_copy, frozen_model.parameters()))  # never changed
+    assert not all(torch.equal(a, b) for a, b in zip(before, model.parameters()))  # while learning went on
