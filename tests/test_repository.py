@@ -166,6 +166,11 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
             "scikit-learn",
         ),
         (
+            "mixing.py",
+            "--epochs 1 --pretrain-epochs 1 --examples 50 --sizes 144 8 4 --updates 3 --snapshots 2".split(),
+            "median ratio",
+        ),
+        (
             "distributed.py",
             "--examples 400 --sizes 20 10".split(),
             "scaling efficiency",
