@@ -44,6 +44,7 @@ from .partition import (
 from .pretraining import pretrain
 from .sampling import DataParticles, PersistentSampler
 from .statistics import Statistics
+from .tempering import ReplicaExchangeSampler
 from .train import FitResult, FitState, fit, load_checkpoint, save_checkpoint
 from .viz import image_grid, save_image_grid, save_training_plot
 
@@ -66,6 +67,7 @@ __all__ = [
     "ModeTracker",
     "Monitors",
     "PersistentSampler",
+    "ReplicaExchangeSampler",
     "SplitMetrics",
     "Statistics",
     "TwoPhaseObjective",

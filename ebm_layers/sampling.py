@@ -28,14 +28,15 @@ def gibbs_sweep(
     clamped: Collection[int] = (),
     keep_probabilities: bool = False,
     biases: Sequence[Tensor] | None = None,
-    inverse_temperature: float = 1.0,
+    inverse_temperature: float | Tensor = 1.0,
 ) -> dict[int, Tensor]:
     """Advance ``states`` (one ``(B, n_i)`` per layer, replaced in the list) by one block Gibbs sweep.
 
     The colour classes of ``model.schedule`` are visited in turn; every layer of a class is drawn
     from the states before the class update, ``schedule.unitwise`` layers unit by unit. Layers in
     ``clamped`` keep their states. ``biases`` (one per layer) replace the model's and
-    ``inverse_temperature`` multiplies every logit: the sweep then samples
+    ``inverse_temperature`` (a number, or a ``(B, 1)`` tensor: one per chain, with ``(B, n_i)``
+    biases to match) multiplies every logit: the sweep then samples
     ``exp(-inverse_temperature * E'(x))`` with ``E'`` the model's energy under those biases (the
     intermediate distributions of annealing). Returns the conditional probabilities of the last
     class's layers without lateral couplings when ``keep_probabilities``, else an empty dict.
@@ -50,8 +51,10 @@ def gibbs_sweep(
         count = batch * sum(model.sizes[layer] for layer in drawn)
         generator = F.Uniforms(generator, model.dtype, count)
 
+    scaled = isinstance(inverse_temperature, Tensor) or inverse_temperature != 1.0
+
     def conditional(logits: Tensor) -> Tensor:
-        return torch.sigmoid(logits if inverse_temperature == 1.0 else inverse_temperature * logits)
+        return torch.sigmoid(inverse_temperature * logits if scaled else logits)
 
     def draw(logits: Tensor) -> Tensor:
         return F.sample_bernoulli(conditional(logits), generator)

@@ -1,0 +1,152 @@
+"""Replica exchange for persistent chains: copies of every particle at higher temperatures, where
+the model is flattened towards independent units, swap states with their neighbours."""
+
+from __future__ import annotations
+
+import torch
+from torch import Tensor
+
+from ._checks import check_batch, check_size
+from .functional import base_rate_logits
+from .model import EnergyModel
+from .sampling import PersistentSampler, gibbs_sweep
+
+__all__ = ["ReplicaExchangeSampler"]
+
+
+class ReplicaExchangeSampler(PersistentSampler):
+    """Persistent chains with replica exchange ("Tempered Markov Chain Monte Carlo for training of
+    Restricted Boltzmann Machines", AISTATS 2010).
+
+    Each of the ``P`` particles has ``K - 1`` hotter copies, one per inverse temperature
+    ``beta_1 < ... < beta_K = 1`` on the path ``E_beta = (1 - beta) E_A + beta E`` from a base
+    model ``A`` of independent units (visible biases the log-odds of ``data``'s base rates, or
+    zero; hidden biases zero) to the model, as in annealed importance sampling. A call advances
+    every replica by ``sweeps`` Gibbs sweeps at its own temperature, each sweep followed by
+    Metropolis swaps between neighbouring temperatures (even pairs after even sweeps, odd pairs
+    after odd ones), accepted with probability ``min(1, exp((beta_k - beta_k+1)(D_k - D_k+1)))``,
+    ``D = E - E_A``. Each step leaves the product of the replicas' distributions invariant, so the
+    ``beta = 1`` replica samples the model; it is what ``particles``, ``statistics()`` and
+    ``sample()`` show.
+
+    Args:
+        model: the :class:`EnergyModel`.
+        num_particles: ``P``, the chains at ``beta = 1``.
+        num_replicas: ``K``, temperatures per particle (``K = 1`` is a plain persistent sampler).
+        sweeps, generator, init: as in :class:`PersistentSampler`.
+        data: ``(N, n_0)`` data for the base model's visible biases (default: zero biases).
+        inverse_temperatures: ``K`` increasing values in ``(0, 1]`` ending at 1 (default: evenly
+            spaced, ``1/K, 2/K, ..., 1``).
+
+    Attributes:
+        hot_<i>: buffer ``((K - 1) P, n_i)``: the hotter replicas of layer ``i``, coolest last.
+        inverse_temperatures: buffer ``(K,)`` float64.
+        swap_attempts, swap_accepts: buffers ``(K - 1,)`` float64, per neighbouring pair.
+    """
+
+    def __init__(
+        self,
+        model: EnergyModel,
+        num_particles: int = 100,
+        num_replicas: int = 10,
+        sweeps: int = 1,
+        generator: torch.Generator | None = None,
+        init: str | Tensor = "uniform",
+        *,
+        data: Tensor | None = None,
+        inverse_temperatures: Tensor | None = None,
+    ) -> None:
+        super().__init__(model, num_particles, sweeps, generator, init)
+        num_replicas = check_size("num_replicas", num_replicas)
+        if inverse_temperatures is None:
+            betas = torch.arange(1, num_replicas + 1, dtype=torch.float64) / num_replicas
+        else:
+            betas = torch.as_tensor(inverse_temperatures, dtype=torch.float64).detach().clone()
+            steps = betas[1:] - betas[:-1]
+            if betas.shape != (num_replicas,) or betas[0] <= 0 or betas[-1] != 1 or bool((steps <= 0).any()):
+                raise ValueError(
+                    f"inverse_temperatures must be {num_replicas} increasing values in (0, 1] ending at 1, "
+                    f"got {betas.tolist()}"
+                )
+        base = torch.zeros(model.sizes[0], dtype=model.dtype)
+        if data is not None:
+            data = check_batch("data", data, model.sizes[0], dtype=model.dtype)
+            base = base_rate_logits(data, pseudocount=1.0).to(model.dtype)
+        self.register_buffer("inverse_temperatures", betas)
+        self.register_buffer("base_bias", base)
+        self.register_buffer("swap_attempts", torch.zeros(num_replicas - 1, dtype=torch.float64))
+        self.register_buffer("swap_accepts", torch.zeros(num_replicas - 1, dtype=torch.float64))
+        self.register_buffer("sweeps_done", torch.zeros((), dtype=torch.int64))
+        hot = (num_replicas - 1) * self.num_particles
+        for i, n in enumerate(model.sizes):
+            uniform = torch.full((hot, n), 0.5, dtype=model.dtype)
+            self.register_buffer(f"hot_{i}", torch.bernoulli(uniform, generator=self.generator))
+
+    @torch.no_grad()
+    def reset(self) -> None:
+        """Draw fresh particles from ``init``, and fresh uniform hotter replicas."""
+        super().reset()
+        for i in range(len(self.model.sizes)):
+            hot = getattr(self, f"hot_{i}", None)
+            if hot is not None:  # not yet during __init__
+                setattr(
+                    self, f"hot_{i}", torch.bernoulli(torch.full_like(hot, 0.5), generator=self.generator)
+                )
+
+    @property
+    def num_replicas(self) -> int:
+        return self.inverse_temperatures.numel()
+
+    @property
+    def acceptance_rates(self) -> Tensor:
+        """Share of accepted swaps per neighbouring pair of temperatures ``(K - 1,)`` (NaN before any)."""
+        return self.swap_accepts / self.swap_attempts
+
+    @torch.no_grad()
+    def _advance(self, sweeps: int, keep_probabilities: bool = False) -> dict[int, Tensor]:
+        model, count = self.model, self.num_particles
+        layers = range(len(model.sizes))
+        states = [torch.cat([getattr(self, f"hot_{i}"), self.particles[i]]).to(model.dtype) for i in layers]
+        betas = self.inverse_temperatures.to(model.dtype).repeat_interleave(count)[:, None]  # (K P, 1)
+        # E_beta = beta * E' with E' the model's energy under biases b + (1 - beta) / beta * a: a
+        # Gibbs sweep of the model at inverse temperature beta (per row) with those biases.
+        biases = list(model.biases())
+        biases[0] = biases[0] + (1.0 - betas) / betas * self.base_bias
+        for _ in range(sweeps):
+            gibbs_sweep(model, states, self.generator, biases=biases, inverse_temperature=betas)
+            self._swap(states)
+        hot = (self.num_replicas - 1) * count
+        for i in layers:
+            setattr(self, f"hot_{i}", states[i][:hot])
+        self._set_particles([x[hot:] for x in states])
+        return {}
+
+    def _swap(self, states: list[Tensor]) -> None:
+        """Metropolis swaps between neighbouring temperatures, in place on ``states``."""
+        count, replicas = self.num_particles, self.num_replicas
+        first = int(self.sweeps_done) % 2
+        self.sweeps_done += 1
+        pairs = torch.arange(first, replicas - 1, 2)
+        if pairs.numel() == 0:
+            return
+        gap = (self.model.energy(states) + states[0] @ self.base_bias).to(torch.float64).view(replicas, count)
+        betas = self.inverse_temperatures
+        log_ratio = (betas[pairs] - betas[pairs + 1])[:, None] * (gap[pairs] - gap[pairs + 1])  # (pairs, P)
+        uniform = torch.rand(log_ratio.shape, dtype=torch.float64, generator=self.generator)
+        accept = self._accept(log_ratio, uniform)
+        self.swap_attempts[pairs] += count
+        self.swap_accepts[pairs] += accept.sum(1).to(torch.float64)
+        rows = torch.arange(replicas * count).view(replicas, count)
+        lower, upper = rows[pairs][accept], rows[pairs + 1][accept]
+        for i, x in enumerate(states):
+            swapped = x.clone()
+            swapped[lower], swapped[upper] = x[upper], x[lower]
+            states[i] = swapped
+
+    @staticmethod
+    def _accept(log_ratio: Tensor, uniform: Tensor) -> Tensor:
+        """Metropolis: accept with probability ``min(1, exp(log_ratio))``."""
+        return torch.log(uniform) < log_ratio
+
+    def extra_repr(self) -> str:
+        return f"{super().extra_repr()}, num_replicas={self.num_replicas}"
