@@ -17,6 +17,7 @@ from .diagnostics import (
 )
 from .distributed import rank_generator, rank_states, wrap_distributed
 from .enumeration import ExactStatistics
+from .fast_weights import FastWeightsSampler
 from .features import ConcatenatedLayers, FeatureExtractor, feedforward_network
 from .graph import UpdateSchedule
 from .inference import MeanField
@@ -57,6 +58,7 @@ __all__ = [
     "Estimate",
     "Evaluation",
     "ExactStatistics",
+    "FastWeightsSampler",
     "FeatureExtractor",
     "FitResult",
     "FitState",

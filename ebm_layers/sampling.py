@@ -29,6 +29,7 @@ def gibbs_sweep(
     keep_probabilities: bool = False,
     biases: Sequence[Tensor] | None = None,
     inverse_temperature: float | Tensor = 1.0,
+    weights: Sequence[Tensor] | None = None,
 ) -> dict[int, Tensor]:
     """Advance ``states`` (one ``(B, n_i)`` per layer, replaced in the list) by one block Gibbs sweep.
 
@@ -38,12 +39,14 @@ def gibbs_sweep(
     ``inverse_temperature`` (a number, or a ``(B, 1)`` tensor: one per chain, with ``(B, n_i)``
     biases to match) multiplies every logit: the sweep then samples
     ``exp(-inverse_temperature * E'(x))`` with ``E'`` the model's energy under those biases (the
-    intermediate distributions of annealing). Returns the conditional probabilities of the last
+    intermediate distributions of annealing); ``weights`` (one per coupling) replace the model's
+    weights likewise. Returns the conditional probabilities of the last
     class's layers without lateral couplings when ``keep_probabilities``, else an empty dict.
     The sweep's uniforms are drawn in one block from ``generator`` (or taken from ``Uniforms``).
     """
     biases = model.biases() if biases is None else biases
-    weights, edges = model.weights(), model.edges
+    weights = model.weights() if weights is None else weights
+    edges = model.edges
     classes, unitwise = model.schedule.classes, model.schedule.unitwise
     if not isinstance(generator, F.Uniforms):  # every uniform of the sweep in one block
         drawn = [layer for layers in classes for layer in layers if layer not in clamped]
