@@ -332,6 +332,13 @@ class ModeTracker:
         self.history.append({"epoch": state.epoch + 1, "shares": shares.tolist(), "switching_rate": rate})
         self._switches = []
 
+    def series(self) -> dict[str, list[tuple[int, float]]]:
+        """The switching rate per epoch, as an ``extra`` series for
+        :func:`~ebm_layers.viz.save_training_plot` (the optional picture)."""
+        return {
+            "particles' mode switches per update": [(r["epoch"], r["switching_rate"]) for r in self.history]
+        }
+
 
 def mixing_during_learning(
     objective,

@@ -25,6 +25,7 @@ from tqdm.auto import tqdm
 from ._checks import check_batch, check_count, check_model, check_size
 from ._random import resolve_generator
 from .distributed import current_world, rank_generator, rank_states, wrap_distributed
+from .fast_weights import FastWeightsSampler
 from .graph import is_chain
 from .inference import MeanField
 from .metrics import free_energy_gap
@@ -32,6 +33,7 @@ from .model import EnergyModel
 from .objective import TwoPhaseObjective
 from .pretraining import DEFAULT_PRETRAIN_EPOCHS, pretrain
 from .sampling import DataParticles, PersistentSampler
+from .tempering import ReplicaExchangeSampler
 
 __all__ = ["FitResult", "FitState", "default_optimizer", "fit", "load_checkpoint", "save_checkpoint"]
 
@@ -113,6 +115,7 @@ def fit(
     generator: torch.Generator | None = None,
     pretrain_epochs: int | None = None,
     distributed: bool = False,
+    mixing_aid: str | None = None,
 ) -> FitResult:
     """Train ``model`` on ``data`` for ``epochs`` passes with the two-phase learning rule.
 
@@ -163,6 +166,11 @@ def fit(
             and hold every rank's particles and generators, so ``resume`` continues each rank
             bit-identically (with the same number of ranks). Pretraining, when it runs, is repeated
             identically on every rank. Callbacks run on every rank and must decide ``stop`` alike.
+        mixing_aid: for the default objective, ``"fast-weights"`` (:class:`FastWeightsSampler`,
+            fast learning rate equal to the default learning rate, decay 0.95) or
+            ``"replica-exchange"`` (:class:`ReplicaExchangeSampler`, 10 temperatures towards the
+            data's base rates) instead of plain persistent chains; see ``benchmarks/mixing.py``
+            for what each did on the demo data.
 
     Returns:
         a :class:`FitResult`. Raises ``FloatingPointError`` (the divergence guard of
@@ -186,12 +194,14 @@ def fit(
     rank, world = current_world() if distributed else (0, 1)
     if objective is None:
         particle_generator = rank_generator(generator.initial_seed(), rank) if distributed else generator
-        sampler = PersistentSampler(
-            model, num_particles=DEFAULT_NUM_PARTICLES, sweeps=DEFAULT_SWEEPS, generator=particle_generator
-        )
+        sampler = _default_sampler(model, mixing_aid, particle_generator, data if loader is None else None)
         objective = TwoPhaseObjective(model, MeanField(model, init="bottom-up"), sampler)
     elif not isinstance(objective, TwoPhaseObjective):
         raise TypeError(f"objective must be a TwoPhaseObjective, got {type(objective).__name__}")
+    elif mixing_aid is not None:
+        raise ValueError(
+            "mixing_aid chooses the default objective's sampler; with your own objective, build it in"
+        )
     elif objective.model is not model:
         raise ValueError("objective belongs to another model than the one given")
     if optimizer is None:
@@ -312,6 +322,24 @@ def fit(
     finally:
         objective.process_group = None
     return result
+
+
+MIXING_AIDS = (None, "fast-weights", "replica-exchange")
+
+
+def _default_sampler(
+    model: EnergyModel, mixing_aid: str | None, generator: torch.Generator, data: Tensor | None
+) -> PersistentSampler:
+    """The default objective's negative phase: persistent chains, with ``mixing_aid`` if any."""
+    options = dict(num_particles=DEFAULT_NUM_PARTICLES, sweeps=DEFAULT_SWEEPS, generator=generator)
+    if mixing_aid is None:
+        return PersistentSampler(model, **options)
+    if mixing_aid == "fast-weights":
+        rate = DEFAULT_DEEP_LEARNING_RATE if len(model.layers) > 2 else DEFAULT_LEARNING_RATE
+        return FastWeightsSampler(model, **options, fast_learning_rate=rate)
+    if mixing_aid == "replica-exchange":
+        return ReplicaExchangeSampler(model, **options, data=data)
+    raise ValueError(f"mixing_aid must be one of {MIXING_AIDS}, got {mixing_aid!r}")
 
 
 def default_optimizer(

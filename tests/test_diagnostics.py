@@ -92,6 +92,8 @@ def test_mode_switching_rate_and_tracker():
     for record in tracker.history:
         assert sum(record["shares"]) == pytest.approx(1.0) and len(record["shares"]) == 3
         assert 0.0 < record["switching_rate"] <= 1.0
+    ((name, points),) = tracker.series().items()
+    assert points == [(r["epoch"], r["switching_rate"]) for r in tracker.history] and "switches" in name
 
 
 @pytest.mark.parametrize(

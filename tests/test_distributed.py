@@ -149,7 +149,7 @@ def test_distributed_gradient_and_parameters_equal_one_process_with_both_shards(
 # -- fit(distributed=True): rank-local particles, bit-identical resume ---------------------------
 
 
-def fit_worker(rank: int, folder: str) -> None:
+def fit_worker(rank: int, folder: str, aid: str | None) -> None:
     join_group(rank, folder)
     data = torch.bernoulli(torch.full((120, 10), 0.3), generator=torch.Generator().manual_seed(3))
 
@@ -168,6 +168,7 @@ def fit_worker(rank: int, folder: str) -> None:
             resume=resume,
             callbacks=[interrupt],
             distributed=True,
+            mixing_aid=aid,
             generator=torch.Generator().manual_seed(5),
         )
 
@@ -181,8 +182,9 @@ def fit_worker(rank: int, folder: str) -> None:
     dist.destroy_process_group()
 
 
-def test_distributed_fit_keeps_rank_particles_and_resumes_each_rank_bit_identically(tmp_path):
-    run_ranks(fit_worker, str(tmp_path))
+@pytest.mark.parametrize("aid", [None, "fast-weights", "replica-exchange"])
+def test_distributed_fit_keeps_rank_particles_and_resumes_each_rank_bit_identically(tmp_path, aid):
+    run_ranks(fit_worker, str(tmp_path), aid)
     load = lambda name: torch.load(tmp_path / name, weights_only=True)  # noqa: E731
     for rank in range(WORLD):
         whole, resumed = load(f"whole{rank}.pt"), load(f"resumed{rank}.pt")

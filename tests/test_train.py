@@ -346,3 +346,34 @@ def test_checkpointing_with_an_unseeded_shuffling_loader_warns(tmp_path):
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         el.fit(el.rbm(6, 3), seeded, epochs=1, checkpoint=tmp_path / "run.pt", progress=False)
+
+
+@pytest.mark.parametrize(
+    ("aid", "kind"),
+    [
+        (None, el.PersistentSampler),
+        ("fast-weights", el.FastWeightsSampler),
+        ("replica-exchange", el.ReplicaExchangeSampler),
+    ],
+)
+def test_fit_selects_a_mixing_aid(aid, kind):
+    g = torch.Generator().manual_seed(0)
+    data = torch.bernoulli(torch.full((30, 6), 0.3), generator=g)
+    result = el.fit(el.rbm(6, 3, generator=g), data, epochs=1, mixing_aid=aid, progress=False, generator=g)
+    assert type(result.objective.negative) is kind and len(result.history) == 1
+
+
+def test_fit_refuses_an_unknown_mixing_aid_or_one_beside_an_objective():
+    model = el.rbm(6, 3)
+    before = snapshot(model)
+    with pytest.raises(ValueError, match="mixing_aid must be one of"):
+        el.fit(model, torch.ones(4, 6), epochs=1, mixing_aid="tempering", progress=False)
+    with pytest.raises(ValueError, match="mixing_aid chooses the default objective"):
+        el.fit(
+            model,
+            torch.ones(4, 6),
+            epochs=1,
+            objective=el.TwoPhaseObjective(model),
+            mixing_aid="fast-weights",
+        )
+    assert_unchanged(model, before)
