@@ -30,7 +30,7 @@ import time
 import torch
 
 import ebm_layers as el
-from ebm_layers.datasets import marking_templates, parts_markings
+from ebm_layers.datasets import MARKING_TYPES, marking_templates, parts_markings
 
 
 def main() -> None:
@@ -104,7 +104,7 @@ def compare(args) -> None:
                              generator=torch.Generator().manual_seed(args.seed + 2))  # fmt: skip
         sampler = el.PersistentSampler(model, num_particles=1000, generator=torch.Generator().manual_seed(3))
         samples = sampler.sample(1000, burn_in=args.burn_in, progress=False)[0]
-        coverage = el.mode_occupancy(samples, assign, data=test)
+        coverage = el.mode_occupancy(samples, assign, data=test, names=MARKING_TYPES)
         rows.append((aid or "plain", epochs, seconds, report, coverage))
     sizes = "-".join(map(str, args.sizes))
     print(f"chain {sizes} pretrained once, then joint training for about {args.budget:.0f} s per aid")
