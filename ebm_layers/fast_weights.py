@@ -28,7 +28,7 @@ class FastWeightsSampler(PersistentSampler):
     for training, not a sampler for evaluation (use :class:`PersistentSampler` for that).
 
     Args:
-        model, num_particles, sweeps, generator, init: as in :class:`PersistentSampler`.
+        model, num_particles, sweeps, generator, init, probabilities: as in :class:`PersistentSampler`.
         fast_learning_rate: step of the fast weights (the paper used about the ordinary one's scale).
         fast_decay: factor in [0, 1) applied to the fast weights at every update (0.95 in the paper).
 
@@ -37,17 +37,9 @@ class FastWeightsSampler(PersistentSampler):
     """
 
     def __init__(
-        self,
-        model: EnergyModel,
-        num_particles: int = 100,
-        sweeps: int = 1,
-        generator: torch.Generator | None = None,
-        init: str | Tensor = "uniform",
-        *,
-        fast_learning_rate: float = 0.01,
-        fast_decay: float = 0.95,
+        self, model: EnergyModel, *args, fast_learning_rate: float = 0.01, fast_decay: float = 0.95, **kwargs
     ) -> None:
-        super().__init__(model, num_particles, sweeps, generator, init)
+        super().__init__(model, *args, **kwargs)  # num_particles, sweeps, generator, init, probabilities
         fast_learning_rate = check_real("fast_learning_rate", fast_learning_rate)
         if not 0.0 <= fast_learning_rate < float("inf"):
             raise ValueError(f"fast_learning_rate must be >= 0 and finite, got {fast_learning_rate}")
