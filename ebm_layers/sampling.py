@@ -57,7 +57,12 @@ def gibbs_sweep(
     scaled = isinstance(inverse_temperature, Tensor) or inverse_temperature != 1.0
 
     def conditional(logits: Tensor) -> Tensor:
-        return torch.sigmoid(inverse_temperature * logits if scaled else logits)
+        if not scaled:
+            return torch.sigmoid(logits)
+        factor = inverse_temperature
+        if isinstance(factor, Tensor) and logits.ndim == 1:  # one unit of a lateral layer: (B,)
+            factor = factor.reshape(-1)
+        return torch.sigmoid(factor * logits)
 
     def draw(logits: Tensor) -> Tensor:
         return F.sample_bernoulli(conditional(logits), generator)
