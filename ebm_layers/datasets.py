@@ -126,13 +126,11 @@ def marking_templates(*, dtype: torch.dtype = torch.float32) -> Tensor:
     shift = torch.cartesian_prod(offsets, offsets)  # (81, 2)
     grid = shift.repeat(len(widths), 1)
     half_width = widths.repeat_interleave(len(shift))
-    count = len(grid)
-    keep = torch.ones(count, _max_segments(), dtype=torch.bool)
-    templates = [
-        _ink(_lines(torch.full((count,), t), keep, dtype), grid, half_width).mean(0)
-        for t in range(len(MARKING_TYPES))
-    ]
-    return torch.stack(templates)
+    count, types = len(grid), len(MARKING_TYPES)
+    kinds = torch.arange(types).repeat_interleave(count)  # every type over the whole grid, at once
+    keep = torch.ones(types * count, _max_segments(), dtype=torch.bool)
+    ink = _ink(_lines(kinds, keep, dtype), grid.repeat(types, 1), half_width.repeat(types))
+    return ink.view(types, count, -1).mean(1)
 
 
 def _max_segments() -> int:

@@ -209,7 +209,8 @@ def _initial_positive_sequence(autocovariance: Tensor) -> Tensor:
     positive = torch.cumprod((pairs > 0).to(pairs.dtype), dim=0)  # 1 until the first Gamma_m <= 0
     monotone = torch.cummin(pairs.clamp_min(0.0), dim=0).values
     variance = -autocovariance[0] + 2 * (monotone * positive).sum(0)
-    return (variance / autocovariance[0]).clamp_min(1.0 / autocovariance.shape[0])
+    tau = (variance / autocovariance[0]).clamp_min(1.0 / autocovariance.shape[0])
+    return torch.where(autocovariance[0] > 0, tau, 1.0)  # a constant chain: tau = 1
 
 
 def autocorrelation_time(trace: Tensor, *, pooled: bool = False) -> Tensor:
@@ -232,9 +233,7 @@ def autocorrelation_time(trace: Tensor, *, pooled: bool = False) -> Tensor:
     autocovariance = _autocovariance(trace)
     if pooled:
         return _initial_positive_sequence(autocovariance.mean(1, keepdim=True))[0]
-    constant = autocovariance[0] <= 0
-    tau = _initial_positive_sequence(torch.where(constant, 1.0, autocovariance))
-    return torch.where(constant, 1.0, tau)
+    return _initial_positive_sequence(autocovariance)
 
 
 def effective_sample_size(trace: Tensor, *, pooled: bool = False) -> Tensor:

@@ -8,7 +8,7 @@ from torch import Tensor
 
 from ._checks import check_real
 from .model import EnergyModel
-from .sampling import PersistentSampler, gibbs_sweep
+from .sampling import PersistentSampler
 from .statistics import Statistics
 
 __all__ = ["FastWeightsSampler"]
@@ -60,20 +60,11 @@ class FastWeightsSampler(PersistentSampler):
     def fast_weights(self) -> list[Tensor]:
         return [getattr(self, f"fast_weight_{k}") for k in range(len(self.model.couplings))]
 
-    @torch.no_grad()
-    def _advance(self, sweeps: int, keep_probabilities: bool = False) -> dict[int, Tensor]:
-        model = self.model
-        states = [x.to(model.dtype) for x in self.particles]
-        biases = [b + f for b, f in zip(model.biases(), self.fast_biases)]
-        weights = [w + f for w, f in zip(model.weights(), self.fast_weights)]
-        probabilities: dict[int, Tensor] = {}
-        for s in range(sweeps):
-            last = keep_probabilities and s == sweeps - 1
-            probabilities = gibbs_sweep(
-                model, states, self.generator, keep_probabilities=last, biases=biases, weights=weights
-            )
-        self._set_particles(states)
-        return probabilities
+    def _sweep_parameters(self) -> dict[str, list[Tensor]]:
+        return {
+            "biases": [b + f for b, f in zip(self.model.biases(), self.fast_biases)],
+            "weights": [w + f for w, f in zip(self.model.weights(), self.fast_weights)],
+        }
 
     @torch.no_grad()
     def learn(self, difference: Statistics) -> None:

@@ -392,11 +392,9 @@ def free_energy_gap(model: EnergyModel, train: Tensor, test: Tensor, *, method: 
             float(model.free_energy(x, dtype=torch.float64).mean()) for x in (train, test)
         )
     else:
-        with torch.no_grad():
-            train_mean, test_mean = (
-                -float(_variational_log_f(model, x, ("mean-field",), 1, None)[0].mean())
-                for x in (train, test)
-            )
+        train_mean, test_mean = (
+            -float(_variational_log_f(model, x, ("mean-field",), 1, None)[0].mean()) for x in (train, test)
+        )
     return test_mean - train_mean
 
 

@@ -36,7 +36,7 @@ def gibbs_sweep(
     The colour classes of ``model.schedule`` are visited in turn; every layer of a class is drawn
     from the states before the class update, ``schedule.unitwise`` layers unit by unit. Layers in
     ``clamped`` keep their states. ``biases`` (one per layer) replace the model's and
-    ``inverse_temperature`` (a number, or a ``(B, 1)`` tensor: one per chain, with ``(B, n_i)``
+    ``inverse_temperature`` (a number, or a ``(B,)`` tensor: one per chain, with ``(B, n_i)``
     biases to match) multiplies every logit: the sweep then samples
     ``exp(-inverse_temperature * E'(x))`` with ``E'`` the model's energy under those biases (the
     intermediate distributions of annealing); ``weights`` (one per coupling) replace the model's
@@ -60,8 +60,8 @@ def gibbs_sweep(
         if not scaled:
             return torch.sigmoid(logits)
         factor = inverse_temperature
-        if isinstance(factor, Tensor) and logits.ndim == 1:  # one unit of a lateral layer: (B,)
-            factor = factor.reshape(-1)
+        if isinstance(factor, Tensor):  # one per chain, over a layer (B, n) or one unit's (B,) logits
+            factor = factor.view(-1, *(1,) * (logits.ndim - 1))
         return torch.sigmoid(factor * logits)
 
     def draw(logits: Tensor) -> Tensor:
@@ -183,12 +183,19 @@ class PersistentSampler(nn.Module):
         # The model may have been converted on its own (e.g. model.double()): follow its dtype.
         states = [x.to(self.model.dtype) for x in self.particles]
         probabilities: dict[int, Tensor] = {}
+        replaced = self._sweep_parameters()
         for s in range(sweeps):
+            last = keep_probabilities and s == sweeps - 1
             probabilities = gibbs_sweep(
-                self.model, states, self.generator, keep_probabilities=keep_probabilities and s == sweeps - 1
+                self.model, states, self.generator, keep_probabilities=last, **replaced
             )
         self._set_particles(states)
         return probabilities
+
+    def _sweep_parameters(self) -> dict[str, list[Tensor]]:
+        """Biases or weights the chains use in place of the model's (none here; see
+        :class:`~ebm_layers.fast_weights.FastWeightsSampler`)."""
+        return {}
 
     def forward(self) -> list[Tensor]:
         """Advance every chain by ``sweeps`` sweeps; return the states, one ``(P, n_i)`` per layer."""

@@ -79,19 +79,20 @@ class ReplicaExchangeSampler(PersistentSampler):
         self.register_buffer("sweeps_done", torch.zeros((), dtype=torch.int64))
         hot = (num_replicas - 1) * self.num_particles
         for i, n in enumerate(model.sizes):
-            uniform = torch.full((hot, n), 0.5, dtype=model.dtype)
-            self.register_buffer(f"hot_{i}", torch.bernoulli(uniform, generator=self.generator))
+            self.register_buffer(f"hot_{i}", torch.empty(hot, n, dtype=model.dtype))
+        self._draw_hot()
 
     @torch.no_grad()
     def reset(self) -> None:
         """Draw fresh particles from ``init``, and fresh uniform hotter replicas."""
         super().reset()
+        if hasattr(self, "hot_0"):  # not yet during PersistentSampler.__init__
+            self._draw_hot()
+
+    def _draw_hot(self) -> None:
         for i in range(len(self.model.sizes)):
-            hot = getattr(self, f"hot_{i}", None)
-            if hot is not None:  # not yet during __init__
-                setattr(
-                    self, f"hot_{i}", torch.bernoulli(torch.full_like(hot, 0.5), generator=self.generator)
-                )
+            hot = getattr(self, f"hot_{i}")
+            setattr(self, f"hot_{i}", torch.bernoulli(torch.full_like(hot, 0.5), generator=self.generator))
 
     @property
     def num_replicas(self) -> int:
@@ -107,11 +108,11 @@ class ReplicaExchangeSampler(PersistentSampler):
         model, count = self.model, self.num_particles
         layers = range(len(model.sizes))
         states = [torch.cat([getattr(self, f"hot_{i}"), self.particles[i]]).to(model.dtype) for i in layers]
-        betas = self.inverse_temperatures.to(model.dtype).repeat_interleave(count)[:, None]  # (K P, 1)
+        betas = self.inverse_temperatures.to(model.dtype).repeat_interleave(count)  # (K P,)
         # E_beta = beta * E' with E' the model's energy under biases b + (1 - beta) / beta * a: a
         # Gibbs sweep of the model at inverse temperature beta (per row) with those biases.
         biases = list(model.biases())
-        biases[0] = biases[0] + (1.0 - betas) / betas * self.base_bias
+        biases[0] = biases[0] + ((1.0 - betas) / betas)[:, None] * self.base_bias
         for _ in range(sweeps):
             gibbs_sweep(model, states, self.generator, biases=biases, inverse_temperature=betas)
             self._swap(states)

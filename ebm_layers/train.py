@@ -335,8 +335,7 @@ def _default_sampler(
     if mixing_aid is None:
         return PersistentSampler(model, **options)
     if mixing_aid == "fast-weights":
-        rate = DEFAULT_DEEP_LEARNING_RATE if len(model.layers) > 2 else DEFAULT_LEARNING_RATE
-        return FastWeightsSampler(model, **options, fast_learning_rate=rate)
+        return FastWeightsSampler(model, **options, fast_learning_rate=_default_learning_rate(model))
     if mixing_aid == "replica-exchange":
         return ReplicaExchangeSampler(model, **options, data=data)
     raise ValueError(f"mixing_aid must be one of {MIXING_AIDS}, got {mixing_aid!r}")
@@ -348,13 +347,16 @@ def default_optimizer(
     """``fit``'s default optimizer and scheduler: Adam at ``DEFAULT_LEARNING_RATE`` (an RBM or any
     two-layer model) or ``DEFAULT_DEEP_LEARNING_RATE`` (three layers or more), decayed
     linearly towards zero over ``epochs`` (epoch ``e`` runs at ``1 - e / epochs`` of it)."""
-    deep = len(model.layers) > 2
-    learning_rate = DEFAULT_DEEP_LEARNING_RATE if deep else DEFAULT_LEARNING_RATE
-    optimizer = torch.optim.Adam(model.parameters(), lr=learning_rate)
+    optimizer = torch.optim.Adam(model.parameters(), lr=_default_learning_rate(model))
     scheduler = torch.optim.lr_scheduler.LinearLR(
         optimizer, start_factor=1.0, end_factor=0.0, total_iters=max(1, epochs)
     )
     return optimizer, scheduler
+
+
+def _default_learning_rate(model: EnergyModel) -> float:
+    """``DEFAULT_DEEP_LEARNING_RATE`` for three layers or more, else ``DEFAULT_LEARNING_RATE``."""
+    return DEFAULT_DEEP_LEARNING_RATE if len(model.layers) > 2 else DEFAULT_LEARNING_RATE
 
 
 def save_checkpoint(state: dict, path: str | os.PathLike) -> None:

@@ -140,13 +140,13 @@ def main() -> None:
     samples = samples.sample(1000, burn_in=args.burn_in, progress=progress)[0]
     from_data = el.PersistentSampler(model, num_particles=len(test), init=test, generator=g)
     from_data = from_data.sample(len(test), burn_in=args.burn_in, progress=progress)[0]
-    occupancy = occupancy_of(samples)
-    shares = {
-        "data": occupancy.data_shares,
-        "particles": occupancy_of(result.objective.negative.particles[0]).sample_shares,
-        "from data": occupancy_of(from_data).sample_shares,
-        "samples": occupancy.sample_shares,
+    occupancies = {
+        "particles": occupancy_of(result.objective.negative.particles[0]),
+        "from data": occupancy_of(from_data),
+        "samples": occupancy_of(samples),
     }
+    occupancy = occupancies["samples"]
+    shares = {"data": occupancy.data_shares, **{key: o.sample_shares for key, o in occupancies.items()}}
 
     # 4. Features for a classifier.
     extractor = el.FeatureExtractor(model)
@@ -190,9 +190,7 @@ def main() -> None:
         "train_log_likelihood_estimate": report.train.importance_log_likelihood,
         "sample_burn_in": args.burn_in,
         "shares": {key: dict(zip(MARKING_TYPES, value.tolist())) for key, value in shares.items()},
-        "total_variation": {
-            key: 0.5 * float((value - shares["data"]).abs().sum()) for key, value in shares.items()
-        },
+        "total_variation": {"data": 0.0, **{key: o.total_variation for key, o in occupancies.items()}},
         "missing_modes": list(occupancy.missing),
         "accuracy_raw_pixels": raw_accuracy,
         "accuracy_features": feature_accuracy,
