@@ -8,7 +8,11 @@ Sources of the checks:
   Sequences" (Statistical Science, 1992) — near 1 for chains of one distribution, large for chains
   with different means (a negative control);
 - sampler traces: the energies recorded equal ``model.energy`` of the particles (mathematics);
-- switching rates on hand-made sequences (counting).
+- switching rates on hand-made sequences (counting);
+- other assignments than templates: a ``sklearn.linear_model.LogisticRegression`` trained on the
+  demo's labels gives shares near the true label shares, and ``sklearn.cluster.KMeans`` clusters give
+  near-equal shares to two halves of one data set, far from a one-type subset (a negative control)
+  (common practice, no source).
 """
 
 from __future__ import annotations
@@ -21,6 +25,7 @@ import torch
 from scipy.signal import lfilter
 
 import ebm_layers as el
+from ebm_layers.datasets import parts_markings
 
 
 def ar1(rho: float, length: int, chains: int, seed: int) -> torch.Tensor:
@@ -94,6 +99,47 @@ def test_mode_switching_rate_and_tracker():
         assert 0.0 < record["switching_rate"] <= 1.0
     ((name, points),) = tracker.series().items()
     assert points == [(r["epoch"], r["switching_rate"]) for r in tracker.history] and "switches" in name
+
+
+def test_mode_occupancy_with_a_classifier_or_k_means_as_the_assignment():
+    linear_model = pytest.importorskip("sklearn.linear_model")
+    cluster = pytest.importorskip("sklearn.cluster")
+    scans, labels = parts_markings(1200, generator=torch.Generator().manual_seed(5), dtype=torch.float64)
+    train, test, test_labels = scans[:600], scans[600:], labels[600:]
+    classifier = linear_model.LogisticRegression(max_iter=500).fit(train.numpy(), labels[:600].numpy())
+    by_classifier = el.mode_occupancy(
+        test, lambda x: torch.from_numpy(classifier.predict(x.numpy())), num_modes=8
+    )
+    true_shares = torch.bincount(test_labels, minlength=8).double() / len(test_labels)
+    assert (by_classifier.sample_shares - true_shares).abs().max() < 0.03
+
+    k_means = cluster.KMeans(8, n_init=3, random_state=0).fit(train.numpy())
+
+    def cluster_of(x):
+        return torch.from_numpy(k_means.predict(x.numpy()).astype("int64"))
+
+    halves = el.mode_occupancy(test[:300], cluster_of, data=test[300:], num_modes=8)
+    assert halves.total_variation < 0.12
+    one_type = el.mode_occupancy(test[test_labels == 0], cluster_of, data=test[300:], num_modes=8)
+    assert one_type.total_variation > 0.5 and len(one_type.missing) >= 3
+
+
+def test_mode_tracker_series_make_a_picture(tmp_path):
+    pytest.importorskip("matplotlib")
+    g = torch.Generator().manual_seed(3)
+    data = torch.bernoulli(torch.full((40, 6), 0.5), generator=g)
+    tracker = el.ModeTracker(lambda x: x[:, 0].long(), num_modes=2)
+    result = el.fit(
+        el.rbm(6, 3, generator=g),
+        data,
+        epochs=2,
+        batch_size=10,
+        callbacks=[tracker],
+        progress=False,
+        generator=g,
+    )
+    path = el.save_training_plot(tmp_path / "training.png", result.history, extra=tracker.series())
+    assert path.read_bytes().startswith(b"\x89PNG")
 
 
 @pytest.mark.parametrize(
