@@ -6,6 +6,7 @@ particles and optimizer state untouched.
 
 from __future__ import annotations
 
+import math
 import numbers
 from collections.abc import Sequence
 
@@ -53,6 +54,14 @@ def check_real(name: str, value: object) -> float:
     if isinstance(value, bool) or not isinstance(value, numbers.Real):
         raise TypeError(f"{name} must be a number, got {value!r} ({type(value).__name__})")
     return float(value)
+
+
+def check_positive_real(name: str, value: object) -> float:
+    """Return ``value`` as a float after checking it is a positive, finite real number."""
+    value = check_real(name, value)
+    if not 0.0 < value < math.inf:
+        raise ValueError(f"{name} must be positive and finite, got {value}")
+    return value
 
 
 def check_index(name: str, value: object, count: int | None = None) -> int:

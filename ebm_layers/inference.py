@@ -11,7 +11,7 @@ import torch
 from torch import Tensor, nn
 
 from . import functional as F
-from ._checks import check_batch, check_index, check_model, check_real, check_size
+from ._checks import check_batch, check_index, check_model, check_positive_real, check_real, check_size
 from .graph import UpdateSchedule
 from .model import EnergyModel
 from .statistics import Statistics
@@ -112,9 +112,7 @@ class MeanField(nn.Module):
         check_real("damping", damping)
         if not 0.0 <= damping < 1.0:
             raise ValueError(f"damping must lie in [0, 1), got {damping}")
-        check_real("tol", tol)
-        if not 0.0 < tol < math.inf:
-            raise ValueError(f"tol must be positive and finite, got {tol}")
+        check_positive_real("tol", tol)
         self.max_iter = check_size("max_iter", max_iter)
         if isinstance(init, str):
             if init != "bottom-up":

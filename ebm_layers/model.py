@@ -2,14 +2,13 @@
 
 from __future__ import annotations
 
-import math
 from collections.abc import Collection, Mapping, Sequence
 
 import torch
 from torch import Tensor, nn
 
 from . import functional as F
-from ._checks import check_batch, check_index, check_real, check_size, check_states
+from ._checks import check_batch, check_index, check_positive_real, check_size, check_states
 from ._random import resolve_generator
 from .couplings import DenseCoupling, LateralCoupling
 from .graph import UpdateSchedule, check_schedule, colour_classes, first_coupled_pair
@@ -176,9 +175,7 @@ class EnergyModel(nn.Module):
         UTML TR 2010-003, 2010), section 8; the pseudocount keeps constant units finite.
         """
         check_batch("data", data, self.sizes[0])
-        pseudocount = check_real("pseudocount", pseudocount)
-        if not 0 < pseudocount < math.inf:
-            raise ValueError(f"pseudocount must be positive and finite, got {pseudocount}")
+        pseudocount = check_positive_real("pseudocount", pseudocount)
         self.layers[0].bias.copy_(F.base_rate_logits(data, pseudocount))
 
     def extra_repr(self) -> str:

@@ -30,6 +30,7 @@ def pretrain(
     *,
     epochs: int = DEFAULT_PRETRAIN_EPOCHS,
     batch_size: int | None = None,
+    learning_rate: float | None = None,
     progress: bool = True,
     generator: torch.Generator | None = None,
 ) -> list[FitResult]:
@@ -52,6 +53,10 @@ def pretrain(
         data: ``(N, n_0)`` training data, binary or Bernoulli means.
         epochs: passes over the data for each RBM.
         batch_size: batch size of each RBM's :func:`fit` (default: fit's).
+        learning_rate: Adam's starting learning rate for each RBM, decayed as in
+            :func:`default_optimizer` (default: fit's for an RBM). On the demo data a lower rate
+            than the default gave RBMs whose own samples cover the data's modes better
+            (``benchmarks/learning_rate.py``).
         progress: show one tqdm bar per RBM.
         generator: the ``torch.Generator`` behind every RBM's initial weights, particles and
             shuffling.
@@ -69,7 +74,7 @@ def pretrain(
         >>> len(results), len(results[0].history)
         (2, 2)
     """
-    from .train import fit  # fit pretrains by default: imported here to avoid an import cycle
+    from .train import default_optimizer, fit  # fit pretrains by default: imported here (cycle)
 
     check_model(model)
     if not is_chain(len(model.layers), model.edges):
@@ -94,12 +99,15 @@ def pretrain(
         _tie(stage, visible_copies, hidden_copies)
         _init_visible_bias(stage, x)
         stage_data = x.repeat(1, visible_copies)
+        optimizer, scheduler = default_optimizer(stage, epochs, learning_rate)
         results.append(
             fit(
                 stage,
                 stage_data,
                 epochs=epochs,
                 batch_size=batch_size,
+                optimizer=optimizer,
+                scheduler=scheduler,
                 progress=progress,
                 generator=generator,
                 pretrain_epochs=0,

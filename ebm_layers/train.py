@@ -22,7 +22,7 @@ from torch import Tensor
 from torch.utils.data import DataLoader, DistributedSampler, RandomSampler
 from tqdm.auto import tqdm
 
-from ._checks import check_batch, check_count, check_model, check_size
+from ._checks import check_batch, check_count, check_model, check_positive_real, check_size
 from ._random import resolve_generator
 from .distributed import current_world, rank_generator, rank_states, wrap_distributed
 from .fast_weights import FastWeightsSampler
@@ -342,12 +342,18 @@ def _default_sampler(
 
 
 def default_optimizer(
-    model: EnergyModel, epochs: int
+    model: EnergyModel, epochs: int, learning_rate: float | None = None
 ) -> tuple[torch.optim.Optimizer, torch.optim.lr_scheduler.LRScheduler]:
-    """``fit``'s default optimizer and scheduler: Adam at ``DEFAULT_LEARNING_RATE`` (an RBM or any
-    two-layer model) or ``DEFAULT_DEEP_LEARNING_RATE`` (three layers or more), decayed
-    linearly towards zero over ``epochs`` (epoch ``e`` runs at ``1 - e / epochs`` of it)."""
-    optimizer = torch.optim.Adam(model.parameters(), lr=_default_learning_rate(model))
+    """``fit``'s default optimizer and scheduler: Adam at ``learning_rate`` (default
+    ``DEFAULT_LEARNING_RATE`` for an RBM or any two-layer model, ``DEFAULT_DEEP_LEARNING_RATE``
+    for three layers or more), decayed linearly towards zero over ``epochs`` (epoch ``e`` runs at
+    ``1 - e / epochs`` of it)."""
+    learning_rate = (
+        _default_learning_rate(model)
+        if learning_rate is None
+        else check_positive_real("learning_rate", learning_rate)
+    )
+    optimizer = torch.optim.Adam(model.parameters(), lr=learning_rate)
     scheduler = torch.optim.lr_scheduler.LinearLR(
         optimizer, start_factor=1.0, end_factor=0.0, total_iters=max(1, epochs)
     )

@@ -131,6 +131,17 @@ def test_fit_pretrains_a_fresh_deep_chain_by_default():
     assert [len(h) for h in asked.pretraining] == [2, 2]
 
 
+def test_each_rbm_trains_at_the_learning_rate_asked_for():
+    data = random_data(30, 6, seed=1)
+    results = el.pretrain(el.dbm(6, 5, 4, 3), data, epochs=4, learning_rate=0.003, progress=False)
+    for result in results:  # every RBM: Adam starting at 0.003, decayed linearly over the 4 epochs
+        assert isinstance(result.optimizer, torch.optim.Adam)
+        rates = [record["learning_rate"] for record in result.history]
+        assert rates == pytest.approx([0.003, 0.00225, 0.0015, 0.00075])
+    default = el.pretrain(el.dbm(6, 5, 4), data, epochs=1, progress=False)  # negative control
+    assert default[0].history[0]["learning_rate"] == pytest.approx(el.train.DEFAULT_LEARNING_RATE)
+
+
 def test_fit_warns_that_a_data_loader_skips_pretraining():
     data = random_data(20, 6, seed=1)
     loader = DataLoader(TensorDataset(data), batch_size=5)
@@ -183,6 +194,13 @@ def _bad_cases():
         (lambda m: el.pretrain(lateral, data, progress=False), ValueError, "chain"),
         (lambda m: el.pretrain(m, data[:, :5], progress=False), ValueError, "data"),
         (lambda m: el.pretrain(m, data, epochs=-1, progress=False), ValueError, "epochs"),
+        (lambda m: el.pretrain(m, data, learning_rate=0.0, progress=False), ValueError, "learning_rate"),
+        (lambda m: el.pretrain(m, data, learning_rate="fast", progress=False), TypeError, "learning_rate"),
+        (
+            lambda m: el.pretrain(m, data, learning_rate=float("nan"), progress=False),
+            ValueError,
+            "learning_rate",
+        ),
         (lambda m: el.pretrain("model", data), TypeError, "model must be"),
         (lambda m: el.fit(m, data, pretrain_epochs=-2, progress=False), ValueError, "pretrain_epochs"),
         (lambda m: el.fit(m, data, pretrain_epochs=1.5, progress=False), TypeError, "pretrain_epochs"),
