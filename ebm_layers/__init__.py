@@ -46,7 +46,7 @@ from .pretraining import pretrain
 from .sampling import DataParticles, PersistentSampler
 from .statistics import Statistics
 from .tempering import ReplicaExchangeSampler
-from .train import FitResult, FitState, fit, load_checkpoint, save_checkpoint
+from .train import FitResult, FitState, default_optimizer, fit, load_checkpoint, save_checkpoint
 from .viz import image_grid, save_image_grid, save_training_plot
 
 __all__ = [
@@ -79,6 +79,7 @@ __all__ = [
     "autocorrelation_time",
     "datasets",
     "dbm",
+    "default_optimizer",
     "effective_sample_size",
     "evaluate",
     "exact_log_likelihood",

@@ -171,6 +171,12 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
             "median ratio",
         ),
         (
+            "learning_rate.py",
+            "--rates 0.01 --seeds 0 --epochs 1 --pretrain-epochs 1 --examples 60 --test-examples 20 "
+            "--burn-in 2 --betas 10".split(),
+            "medians over seeds",
+        ),
+        (
             "distributed.py",
             "--examples 400 --sizes 20 10".split(),
             "scaling efficiency",
