@@ -8,7 +8,7 @@ follows from the learning rate. On the demo data (synthetic marking scans,
 - an RBM 144-200 with ``fit`` for ``--epochs`` passes, Adam starting at the rate (the default
   optimizer and its linear decay, ``el.default_optimizer``), and
 - a chain 144-200-100 pretrained with ``pretrain(learning_rate=rate)``, then trained jointly with
-  ``fit``'s defaults (Adam at 0.001) for ``--epochs`` passes,
+  ``fit`` for ``--epochs`` passes (Adam at ``--joint-rate``, default fit's 0.001, decayed linearly),
 
 and reports the total variation between the data's type shares and those of 1000 samples drawn
 after ``--burn-in`` plain Gibbs sweeps from random states (mode = nearest marking template; for
@@ -57,7 +57,9 @@ def run(kind: str, rate: float, seed: int, args) -> dict:
             model, train, epochs=args.pretrain_epochs, learning_rate=rate, progress=False, generator=g
         )
         row["pretrained"] = sample_distance(model, test, args.burn_in, seed + 1)
-        el.fit(model, train, epochs=args.epochs, pretrain_epochs=0, progress=False, generator=g)
+        optimizer, scheduler = el.default_optimizer(model, args.epochs, args.joint_rate)
+        el.fit(model, train, epochs=args.epochs, optimizer=optimizer, scheduler=scheduler, pretrain_epochs=0,
+               progress=False, generator=g)  # fmt: skip
     row["seconds"] = time.perf_counter() - began
     row["distance"] = sample_distance(model, test, args.burn_in, seed + 1)
     report = el.evaluate(model, train, test=test, num_betas=args.betas, progress=False,
@@ -77,6 +79,7 @@ def main() -> None:
                         help="Adam starting rates: the RBM's, or the chain's pretraining RBMs'")  # fmt: skip
     parser.add_argument("--seeds", type=int, nargs="+", default=[0, 1, 2], help="seeds of data and model")
     parser.add_argument("--epochs", type=int, default=40, help="training passes (the chain: joint)")
+    parser.add_argument("--joint-rate", type=float, default=None, help="the chain's joint Adam rate (fit's)")
     parser.add_argument("--pretrain-epochs", type=int, default=el.pretraining.DEFAULT_PRETRAIN_EPOCHS)
     parser.add_argument("--examples", type=int, default=3000)
     parser.add_argument("--test-examples", type=int, default=1000)
