@@ -56,7 +56,7 @@ def pretrain(
         learning_rate: Adam's starting learning rate for each RBM, decayed as in
             :func:`default_optimizer` (default: fit's for an RBM). On the demo data a lower rate
             than the default gave RBMs whose own samples cover the data's modes better
-            (``benchmarks/learning_rate.py``).
+            (``benchmarks/learning_rate.py``); on the 8x8 digits the default did best.
         progress: show one tqdm bar per RBM.
         generator: the ``torch.Generator`` behind every RBM's initial weights, particles and
             shuffling.
