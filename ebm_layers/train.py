@@ -137,7 +137,9 @@ def fit(
             :class:`DataParticles`, tuples ``(v, index)``). For a bit-identical resume, give a
             shuffling loader its own ``generator``: its state is saved in checkpoints.
         objective: a :class:`TwoPhaseObjective` of ``model`` (default: built as above).
-        optimizer: any ``torch.optim`` optimizer over the model's parameters (default: as above).
+        optimizer: any ``torch.optim`` optimizer over the model's parameters (default: as above;
+            another starting rate with the same decay: ``default_optimizer(model, epochs, rate)``
+            for ``optimizer`` and ``scheduler``).
         scheduler: a learning-rate scheduler stepped once per epoch (default: the decay above
             with the default optimizer; none with your own optimizer).
         epochs: number of passes over the data, counted from the start (resuming at epoch k
