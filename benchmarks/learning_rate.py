@@ -31,13 +31,14 @@ import torch
 import ebm_layers as el
 from ebm_layers.datasets import MARKING_TYPES, marking_templates, parts_markings
 
+ASSIGN = el.nearest_template(marking_templates())  # mode = the nearest marking type's template
+
 
 def sample_distance(model: el.EnergyModel, test: torch.Tensor, burn_in: int, seed: int) -> float:
     """Total variation between the test scans' type shares and those of the model's samples."""
     sampler = el.PersistentSampler(model, num_particles=1000, generator=torch.Generator().manual_seed(seed))
     samples = sampler.sample(1000, burn_in=burn_in, progress=False)[0]
-    assign = el.nearest_template(marking_templates())
-    return el.mode_occupancy(samples, assign, data=test, names=MARKING_TYPES).total_variation
+    return el.mode_occupancy(samples, ASSIGN, data=test, names=MARKING_TYPES).total_variation
 
 
 def run(kind: str, rate: float, seed: int, args) -> dict:
@@ -65,7 +66,8 @@ def run(kind: str, rate: float, seed: int, args) -> dict:
     report = el.evaluate(model, train, test=test, num_betas=args.betas, progress=False,
                          generator=torch.Generator().manual_seed(seed + 2))  # fmt: skip
     test_metrics = report.test  # an RBM's log-likelihood uses the exact free energy: no importance step
-    row["estimate"] = test_metrics.importance_log_likelihood or test_metrics.log_likelihood
+    importance = test_metrics.importance_log_likelihood
+    row["estimate"] = test_metrics.log_likelihood if importance is None else importance
     row["conservative"] = test_metrics.conservative_log_likelihood
     return row
 

@@ -394,15 +394,16 @@ def mixing_during_learning(
         frozen_modes = [_modes("particles", frozen.particles[0], assign)]
         for _ in range(updates):
             frozen_modes.append(_modes("particles", frozen()[0], assign))
-        learning, still = (mode_switching_rate(torch.stack(m)) for m in (learning_modes, frozen_modes))
+        learning_modes, frozen_modes = torch.stack(learning_modes), torch.stack(frozen_modes)
+        learning, still = mode_switching_rate(learning_modes), mode_switching_rate(frozen_modes)
         records.append(
             {
                 "snapshot": snapshot,
                 "learning": learning,
                 "frozen": still,
                 "ratio": learning / still if still > 0 else float("inf"),
-                "learning_modes": torch.stack(learning_modes),
-                "frozen_modes": torch.stack(frozen_modes),
+                "learning_modes": learning_modes,
+                "frozen_modes": frozen_modes,
             }
         )
     return records

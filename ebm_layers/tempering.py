@@ -139,10 +139,10 @@ class ReplicaExchangeSampler(PersistentSampler):
         self.swap_accepts[pairs] += accept.sum(1).to(torch.float64)
         rows = torch.arange(replicas * count).view(replicas, count)
         lower, upper = rows[pairs][accept], rows[pairs + 1][accept]
+        order = torch.arange(replicas * count)  # row r of the result comes from row order[r]
+        order[lower], order[upper] = upper, lower
         for i, x in enumerate(states):
-            swapped = x.clone()
-            swapped[lower], swapped[upper] = x[upper], x[lower]
-            states[i] = swapped
+            states[i] = x[order]
 
     @staticmethod
     def _accept(log_ratio: Tensor, uniform: Tensor) -> Tensor:

@@ -83,16 +83,23 @@ def test_sampler_traces_record_the_particles_energies():
     )
 
 
-def test_mode_switching_rate_and_tracker():
-    modes = torch.tensor([[0, 1, 2, 0], [0, 2, 2, 0], [1, 2, 0, 0]])
-    assert el.mode_switching_rate(modes) == pytest.approx((1 / 4 + 2 / 4) / 2)
-    with pytest.raises(ValueError, match="T >= 2 records"):
-        el.mode_switching_rate(modes[:1])
+@pytest.fixture(scope="module")
+def tracked_fit():
+    """A 2-epoch fit of a small RBM with a ModeTracker: ``(FitResult, tracker)``."""
     g = torch.Generator().manual_seed(1)
     data = torch.bernoulli(torch.full((60, 6), 0.5), generator=g)
     model = el.rbm(6, 3, generator=g)
     tracker = el.ModeTracker(lambda x: x[:, :2].sum(1).long(), num_modes=3)  # modes: 0, 1 or 2 units on
-    el.fit(model, data, epochs=2, batch_size=10, callbacks=[tracker], progress=False, generator=g)
+    result = el.fit(model, data, epochs=2, batch_size=10, callbacks=[tracker], progress=False, generator=g)
+    return result, tracker
+
+
+def test_mode_switching_rate_and_tracker(tracked_fit):
+    modes = torch.tensor([[0, 1, 2, 0], [0, 2, 2, 0], [1, 2, 0, 0]])
+    assert el.mode_switching_rate(modes) == pytest.approx((1 / 4 + 2 / 4) / 2)
+    with pytest.raises(ValueError, match="T >= 2 records"):
+        el.mode_switching_rate(modes[:1])
+    _, tracker = tracked_fit
     assert [r["epoch"] for r in tracker.history] == [1, 2]
     for record in tracker.history:
         assert sum(record["shares"]) == pytest.approx(1.0) and len(record["shares"]) == 3
@@ -124,20 +131,9 @@ def test_mode_occupancy_with_a_classifier_or_k_means_as_the_assignment():
     assert one_type.total_variation > 0.5 and len(one_type.missing) >= 3
 
 
-def test_mode_tracker_series_make_a_picture(tmp_path):
+def test_mode_tracker_series_make_a_picture(tracked_fit, tmp_path):
     pytest.importorskip("matplotlib")
-    g = torch.Generator().manual_seed(3)
-    data = torch.bernoulli(torch.full((40, 6), 0.5), generator=g)
-    tracker = el.ModeTracker(lambda x: x[:, 0].long(), num_modes=2)
-    result = el.fit(
-        el.rbm(6, 3, generator=g),
-        data,
-        epochs=2,
-        batch_size=10,
-        callbacks=[tracker],
-        progress=False,
-        generator=g,
-    )
+    result, tracker = tracked_fit
     path = el.save_training_plot(tmp_path / "training.png", result.history, extra=tracker.series())
     assert path.read_bytes().startswith(b"\x89PNG")
 
