@@ -143,7 +143,12 @@ def fit(
         scheduler: a learning-rate scheduler stepped once per epoch (default: the decay above
             with the default optimizer; none with your own optimizer).
         epochs: number of passes over the data, counted from the start (resuming at epoch k
-            runs ``epochs - k`` more).
+            runs ``epochs - k`` more). Resuming with the ``epochs`` of the interrupted run gives
+            the uninterrupted run bit for bit; with another number, the default schedule goes on
+            from the rate of the last epoch trained and decays linearly to zero at the new last
+            epoch (epoch ``j`` at ``last rate * (epochs - j) / (epochs - k + 1)``). Your own
+            scheduler is loaded as saved: when its rate reaches zero before the last epoch,
+            ``fit`` warns.
         batch_size: batch size for tensor data (default ``DEFAULT_BATCH_SIZE``).
         validation: held-out ``(M, n_0)`` data for the free-energy gap of every epoch.
         callbacks: callables run after every batch and every epoch, see :class:`FitState`.
@@ -206,6 +211,7 @@ def fit(
         )
     elif objective.model is not model:
         raise ValueError("objective belongs to another model than the one given")
+    default_schedule = optimizer is None and scheduler is None
     if optimizer is None:
         optimizer, default_scheduler = default_optimizer(model, epochs)
         scheduler = default_scheduler if scheduler is None else scheduler
@@ -244,7 +250,9 @@ def fit(
     result = FitResult(objective, optimizer, scheduler)
     start = 0
     if resume is not None:
-        start = _resume(resume, result, shuffling, (rank, world) if distributed else None)
+        start, planned, last_rates = _resume(resume, result, shuffling, (rank, world) if distributed else None)
+        if default_schedule and planned not in (None, epochs) and start < epochs:
+            scheduler = result.scheduler = _continued_decay(optimizer, last_rates, start, epochs)
     elif pretrain_epochs:
         stages = pretrain(
             model, data, epochs=pretrain_epochs, batch_size=batch_size, progress=progress, generator=generator
@@ -263,10 +271,19 @@ def fit(
     total = None if batches_per_epoch is None else batches_per_epoch * (epochs - start)
     step = start * (batches_per_epoch or 0)
     runner = wrap_distributed(objective) if distributed else objective
+    warned_zero_rate = False
     try:
         with tqdm(total=total, unit="batch", disable=not progress or rank != 0, dynamic_ncols=True) as bar:
             for epoch in range(start, epochs):
                 bar.set_description(f"epoch {epoch + 1}/{epochs}")
+                if not warned_zero_rate and all(group["lr"] == 0 for group in optimizer.param_groups):
+                    warned_zero_rate = True
+                    warnings.warn(
+                        f"the learning rate is 0 at epoch {epoch + 1} of {epochs}: the scheduler ended "
+                        "before the last epoch, so the remaining epochs leave the parameters as they are "
+                        "(resuming with more epochs? give fit a scheduler that spans them)",
+                        stacklevel=2,
+                    )
                 began = time.perf_counter()
                 gaps, iterations, seen, seen_rows = [], [], [], 0
                 for sampler in (shares, getattr(loader, "sampler", None)):
@@ -303,10 +320,11 @@ def fit(
                     "seconds": time.perf_counter() - began,
                 }
                 result.history.append(record)
+                rates = [group["lr"] for group in optimizer.param_groups]
                 if scheduler is not None:
                     scheduler.step()
                 if checkpoint is not None:
-                    state = _checkpoint_state(result, epoch + 1, shuffling)
+                    state = _checkpoint_state(result, epoch + 1, shuffling, epochs, rates)
                     if distributed:  # every rank's particles and generators, written by rank 0
                         state["ranks"] = rank_states(objective)
                     if rank == 0:
@@ -393,10 +411,14 @@ def load_checkpoint(path: str | os.PathLike) -> dict:
     return state
 
 
-def _checkpoint_state(result: FitResult, epochs_done: int, shuffling: torch.Generator | None) -> dict:
+def _checkpoint_state(
+    result: FitResult, epochs_done: int, shuffling: torch.Generator | None, epochs: int, rates: list[float]
+) -> dict:
     return {
         "format": _CHECKPOINT_FORMAT,
         "epoch": epochs_done,
+        "epochs": epochs,  # the planned length, for a resume that asks for another
+        "learning_rates": rates,  # each parameter group's rate in the last epoch trained
         "objective": result.objective.state_dict(),
         "optimizer": result.optimizer.state_dict(),
         "scheduler": None if result.scheduler is None else result.scheduler.state_dict(),
@@ -406,9 +428,13 @@ def _checkpoint_state(result: FitResult, epochs_done: int, shuffling: torch.Gene
     }
 
 
-def _resume(path, result: FitResult, shuffling: torch.Generator | None, ranks: tuple[int, int] | None) -> int:
+def _resume(
+    path, result: FitResult, shuffling: torch.Generator | None, ranks: tuple[int, int] | None
+) -> tuple[int, int | None, list[float] | None]:
     """Load checkpoint ``path`` into ``result`` (with ``ranks = (rank, world size)``, also this
-    rank's own buffers); returns the number of epochs done."""
+    rank's own buffers); returns the number of epochs done, the number the run that wrote it
+    planned and each parameter group's learning rate in its last epoch (both ``None`` in a
+    checkpoint of an older version: its schedule then continues as saved)."""
     state = load_checkpoint(path)
     if ranks is not None and len(state.get("ranks", ())) != ranks[1]:
         raise ValueError(
@@ -436,7 +462,22 @@ def _resume(path, result: FitResult, shuffling: torch.Generator | None, ranks: t
         shuffling.set_state(state["shuffling"])
     result.history.extend(state["history"])
     result.pretraining = state.get("pretraining", [])
-    return state["epoch"]
+    return state["epoch"], state.get("epochs"), state.get("learning_rates")
+
+
+def _continued_decay(
+    optimizer: torch.optim.Optimizer, last_rates: list[float], done: int, epochs: int
+) -> torch.optim.lr_scheduler.LinearLR:
+    """The default schedule of a resumed run that asks for another number of epochs: from each
+    group's rate in the last epoch trained, linearly down to zero at the new last epoch (epoch
+    ``j`` runs at ``last * (epochs - j) / (epochs - done + 1)``). With the planned number of
+    epochs that is the uninterrupted schedule itself, ``lr * (1 - j / epochs)``."""
+    for group, rate in zip(optimizer.param_groups, last_rates):
+        group["lr"] = rate
+    remaining = epochs - done
+    return torch.optim.lr_scheduler.LinearLR(
+        optimizer, start_factor=remaining / (remaining + 1), end_factor=0.0, total_iters=remaining
+    )
 
 
 def _batches(

@@ -377,3 +377,36 @@ def test_fit_refuses_an_unknown_mixing_aid_or_one_beside_an_objective():
             mixing_aid="fast-weights",
         )
     assert_unchanged(model, before)
+
+
+def _rates(result) -> list[float]:
+    return [record["learning_rate"] for record in result.history]
+
+
+def test_resume_with_more_epochs_goes_on_decaying_from_the_last_rate(tmp_path):
+    # Before the fix the default decay kept its old end, and epochs 3-5 ran at rate 0.0.
+    finished = small_run(tmp_path, epochs=2)
+    trained = finished[0].couplings[0].weight.detach().clone()
+    model, result = small_run(tmp_path, epochs=5, resume=True)
+    rates = _rates(result)
+    # Epoch 2 ran at 0.01 * (1 - 1/2); the rest decays linearly to zero at epoch 5 (mathematics).
+    torch.testing.assert_close(rates, [0.01, 0.005, 0.005 * 3 / 4, 0.005 * 2 / 4, 0.005 * 1 / 4])
+    assert not torch.equal(model.couplings[0].weight, trained)
+    # Interrupted at 2 of 4 and resumed with 6: the same rule from epoch 2's rate 0.01 * 3/4.
+    with pytest.raises(KeyboardInterrupt):
+        small_run(tmp_path / "b", epochs=4, stop_after=2)
+    _, result = small_run(tmp_path / "b", epochs=6, resume=True)
+    torch.testing.assert_close(_rates(result)[2:], [0.0075 * k / 5 for k in (4, 3, 2, 1)])
+
+
+def test_a_scheduler_that_ends_before_the_last_epoch_warns():
+    data = torch.bernoulli(torch.full((20, 6), 0.5), generator=torch.Generator().manual_seed(0))
+    model = el.rbm(6, 3)
+    optimizer = torch.optim.Adam(model.parameters(), lr=0.01)
+    scheduler = torch.optim.lr_scheduler.LinearLR(optimizer, 1.0, 0.0, total_iters=2)
+    with pytest.warns(UserWarning, match="learning rate is 0 at epoch 3 of 4"):
+        el.fit(model, data, epochs=4, optimizer=optimizer, scheduler=scheduler, progress=False)
+    with warnings.catch_warnings():  # negative control: a schedule that spans the run is silent
+        warnings.simplefilter("error")
+        optimizer, scheduler = el.default_optimizer(model, 4)
+        el.fit(model, data, epochs=4, optimizer=optimizer, scheduler=scheduler, progress=False)
