@@ -250,7 +250,8 @@ def fit(
     result = FitResult(objective, optimizer, scheduler)
     start = 0
     if resume is not None:
-        start, planned, last_rates = _resume(resume, result, shuffling, (rank, world) if distributed else None)
+        ranks = (rank, world) if distributed else None
+        start, planned, last_rates = _resume(resume, result, shuffling, ranks)
         if default_schedule and planned not in (None, epochs) and start < epochs:
             scheduler = result.scheduler = _continued_decay(optimizer, last_rates, start, epochs)
     elif pretrain_epochs:
