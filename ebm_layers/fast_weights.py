@@ -18,39 +18,57 @@ class FastWeightsSampler(PersistentSampler):
     """Persistent chains that sample with the model's parameters plus fast weights ("Using Fast
     Weights to Improve Persistent Contrastive Divergence", ICML 2009).
 
-    The fast weights start at zero and, after every accepted training step of the
-    :class:`~ebm_layers.objective.TwoPhaseObjective` that uses this sampler, move by their own
-    plain SGD step on the raw statistics gradient and decay:
-    ``fast <- fast_decay * fast + fast_learning_rate * (data statistics - model statistics)``,
-    independent of the optimizer of the ordinary parameters. Only the particles see them; the
-    model, its statistics and every evaluation use the ordinary parameters. The chains therefore
-    do not sample the model exactly while the fast weights are non-zero: they are a mixing aid
-    for training, not a sampler for evaluation (use :class:`PersistentSampler` for that).
+    In that paper the fast weights take the same steps as the ordinary ("slow") ones and decay
+    towards zero, so they hold the last few steps' worth of change. Here they follow the update
+    the optimizer actually applied, whatever the optimizer: every call of :meth:`statistics`
+    (once per training step) first takes the change of every bias and weight since the previous
+    call, ``delta``, and sets ``fast <- fast_decay * fast + fast_scale * delta``. Under SGD that
+    is the paper's rule; under Adam the fast weights move by Adam's steps, not by the raw
+    gradient. Any change of the parameters between two calls counts as a step, so after editing
+    the weights by hand call :meth:`reset_fast_weights`.
+
+    Only the particles see the fast weights; the model, its statistics and every evaluation use
+    the ordinary parameters. The chains therefore do not sample the model exactly while the fast
+    weights are non-zero: they are a mixing aid for training, not a sampler for evaluation (use
+    :class:`PersistentSampler` for that). ``forward`` and ``sample`` leave the fast weights as
+    they are.
 
     Args:
         model, num_particles, sweeps, generator, init, probabilities: as in :class:`PersistentSampler`.
-        fast_learning_rate: step of the fast weights (the paper used about the ordinary one's scale).
-        fast_decay: factor in [0, 1) applied to the fast weights at every update (0.95 in the paper).
+        fast_scale: the fast step as a multiple of the applied step (1: the same size, as in the paper).
+        fast_decay: factor in [0, 1) applied to the fast weights at every step (0.95 in the paper).
 
     Attributes:
         fast_bias_<i>: buffer ``(n_i,)``; fast_weight_<k>: buffer, the shape of coupling ``k``'s weight.
+        last_bias_<i>, last_weight_<k>: buffers, the parameters at the previous call.
+        following: 0-d bool buffer, whether ``last_*`` hold the parameters of a previous call.
     """
 
     def __init__(
-        self, model: EnergyModel, *args, fast_learning_rate: float = 0.01, fast_decay: float = 0.95, **kwargs
+        self,
+        model: EnergyModel,
+        num_particles: int = 100,
+        sweeps: int = 1,
+        generator: torch.Generator | None = None,
+        init: str | Tensor = "uniform",
+        probabilities: bool = False,
+        *,
+        fast_scale: float = 1.0,
+        fast_decay: float = 0.95,
     ) -> None:
-        super().__init__(model, *args, **kwargs)  # num_particles, sweeps, generator, init, probabilities
-        fast_learning_rate = check_real("fast_learning_rate", fast_learning_rate)
-        if not 0.0 <= fast_learning_rate < float("inf"):
-            raise ValueError(f"fast_learning_rate must be >= 0 and finite, got {fast_learning_rate}")
+        super().__init__(model, num_particles, sweeps, generator, init, probabilities)
+        fast_scale = check_real("fast_scale", fast_scale)
+        if not 0.0 <= fast_scale < float("inf"):
+            raise ValueError(f"fast_scale must be >= 0 and finite, got {fast_scale}")
         fast_decay = check_real("fast_decay", fast_decay)
         if not 0.0 <= fast_decay < 1.0:
             raise ValueError(f"fast_decay must lie in [0, 1), got {fast_decay}")
-        self.fast_learning_rate, self.fast_decay = fast_learning_rate, fast_decay
-        for i, bias in enumerate(model.biases()):
-            self.register_buffer(f"fast_bias_{i}", torch.zeros_like(bias.detach()))
-        for k, weight in enumerate(model.weights()):
-            self.register_buffer(f"fast_weight_{k}", torch.zeros_like(weight.detach()))
+        self.fast_scale, self.fast_decay = fast_scale, fast_decay
+        for kind, parameters in (("bias", model.biases()), ("weight", model.weights())):
+            for i, parameter in enumerate(parameters):
+                self.register_buffer(f"fast_{kind}_{i}", torch.zeros_like(parameter.detach()))
+                self.register_buffer(f"last_{kind}_{i}", torch.zeros_like(parameter.detach()))
+        self.register_buffer("following", torch.tensor(False))
 
     @property
     def fast_biases(self) -> list[Tensor]:
@@ -67,16 +85,25 @@ class FastWeightsSampler(PersistentSampler):
         }
 
     @torch.no_grad()
-    def learn(self, difference: Statistics) -> None:
-        """One update of the fast weights from the step's data minus model statistics (called by
-        the objective once the step is accepted)."""
-        for fast, step in zip(self.fast_biases, difference.means):
-            fast.mul_(self.fast_decay).add_(step, alpha=self.fast_learning_rate)
-        for fast, step, (a, b) in zip(self.fast_weights, difference.pairs, self.model.edges):
-            if a == b:  # a lateral weight stays symmetric with a zero diagonal
-                step = step - torch.diag(step.diagonal())
-            fast.mul_(self.fast_decay).add_(step, alpha=self.fast_learning_rate)
+    def statistics(self) -> Statistics:
+        """Move the fast weights by the parameters' change since the last call, then advance the
+        chains by ``sweeps`` sweeps and return their :class:`Statistics` (detached)."""
+        named = [(f"bias_{i}", b) for i, b in enumerate(self.model.biases())]
+        named += [(f"weight_{k}", w) for k, w in enumerate(self.model.weights())]
+        for name, parameter in named:
+            fast, last = getattr(self, f"fast_{name}"), getattr(self, f"last_{name}")
+            if bool(self.following):
+                fast.mul_(self.fast_decay).add_(parameter - last, alpha=self.fast_scale)
+            last.copy_(parameter)
+        self.following.fill_(True)
+        return super().statistics()
+
+    @torch.no_grad()
+    def reset_fast_weights(self) -> None:
+        """Set the fast weights to zero and forget the last parameters (the next call takes no step)."""
+        for fast in self.fast_biases + self.fast_weights:
+            fast.zero_()
+        self.following.fill_(False)
 
     def extra_repr(self) -> str:
-        fast = f"fast_learning_rate={self.fast_learning_rate}, fast_decay={self.fast_decay}"
-        return f"{super().extra_repr()}, {fast}"
+        return f"{super().extra_repr()}, fast_scale={self.fast_scale}, fast_decay={self.fast_decay}"

@@ -12,7 +12,6 @@ from torch import Tensor, nn
 from ._checks import check_model, check_real
 from .distributed import on_any_rank, rank_average
 from .enumeration import ExactStatistics
-from .fast_weights import FastWeightsSampler
 from .inference import MeanField
 from .model import EnergyModel
 from .sampling import DataParticles, PersistentSampler
@@ -197,8 +196,6 @@ class TwoPhaseObjective(nn.Module):
         with torch.no_grad():  # only now that the step is accepted
             for buffer, value in running:
                 buffer.copy_(value)
-        if isinstance(self.negative, FastWeightsSampler):  # each rank's from its own statistics
-            self.negative.learn(difference)
         particles = getattr(self.negative, "particles", None)
         self.last = Monitors(
             difference=difference,

@@ -173,8 +173,8 @@ def fit(
             and hold every rank's particles and generators, so ``resume`` continues each rank
             bit-identically (with the same number of ranks). Pretraining, when it runs, is repeated
             identically on every rank. Callbacks run on every rank and must decide ``stop`` alike.
-        mixing_aid: for the default objective, ``"fast-weights"`` (:class:`FastWeightsSampler`,
-            fast learning rate equal to the default learning rate, decay 0.95) or
+        mixing_aid: for the default objective, ``"fast-weights"`` (:class:`FastWeightsSampler`:
+            fast steps the size of the optimizer's, decay 0.95) or
             ``"replica-exchange"`` (:class:`ReplicaExchangeSampler`, 10 temperatures towards the
             data's base rates) instead of plain persistent chains; see ``benchmarks/mixing.py``
             for what each did on the demo data.
@@ -356,7 +356,7 @@ def _default_sampler(
     if mixing_aid is None:
         return PersistentSampler(model, **options)
     if mixing_aid == "fast-weights":
-        return FastWeightsSampler(model, **options, fast_learning_rate=_default_learning_rate(model))
+        return FastWeightsSampler(model, **options)
     if mixing_aid == "replica-exchange":
         return ReplicaExchangeSampler(model, **options, data=data)
     raise ValueError(f"mixing_aid must be one of {MIXING_AIDS}, got {mixing_aid!r}")

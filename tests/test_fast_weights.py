@@ -2,8 +2,9 @@
 
 Sources of the checks:
 
-- the update rule fast <- decay * fast + rate * (data - model statistics) of "Using Fast Weights to
-  Improve Persistent Contrastive Divergence" (ICML 2009), recomputed here from the statistics;
+- the update rule of "Using Fast Weights to Improve Persistent Contrastive Divergence" (ICML 2009):
+  fast and slow weights take the same steps, the fast ones decaying; recomputed here from the
+  steps SGD and Adam applied;
 - with zero fast weights the chains are the plain sampler's, draw for draw (an invariant, fixed
   seeds); state_dict round trips continue identically (common practice, no source).
 """
@@ -34,23 +35,74 @@ def setup(seed: int = 0, **options):
     return model, sampler, data
 
 
-def test_fast_weights_follow_the_raw_statistics_gradient_and_decay():
-    model, sampler, data = setup(fast_learning_rate=0.3, fast_decay=0.5)
+def parameters(model) -> list[torch.Tensor]:
+    return [p.detach().clone() for p in (*model.biases(), *model.weights())]
+
+
+@pytest.mark.parametrize(
+    "optimizer",
+    [lambda p: torch.optim.SGD(p, lr=0.1), lambda p: torch.optim.Adam(p, lr=0.01)],
+    ids=["SGD", "Adam"],
+)
+def test_fast_weights_take_the_steps_the_optimizer_applied_and_decay(optimizer):
+    # The paper's rule: fast and slow weights take the same steps, the fast ones decaying (ICML 2009).
+    # The old rule (fast_learning_rate times the raw statistics difference) fails this under Adam,
+    # whose steps are about the learning rate per coordinate whatever the gradient's size.
+    model, sampler, data = setup(fast_decay=0.5)
     objective = el.TwoPhaseObjective(model, el.MeanField(model, tol=1e-12, max_iter=500), sampler)
+    optimizer = optimizer(model.parameters())
+    expected = [torch.zeros_like(p) for p in parameters(model)]
+    for _ in range(4):
+        before = parameters(model)
+        objective(data).backward()
+        fast = sampler.fast_biases + sampler.fast_weights
+        for f, e in zip(fast, expected):  # the fast weights seen by this step's sweep
+            torch.testing.assert_close(f, e)
+        optimizer.step()
+        optimizer.zero_grad()
+        applied = [after - b for after, b in zip(parameters(model), before)]
+        expected = [0.5 * e + a for e, a in zip(expected, applied)]
+    assert float(expected[2].abs().max()) > 0  # the check is not vacuous
+    lateral = sampler.fast_weights[1]
+    torch.testing.assert_close(lateral, lateral.mT)  # a lateral fast weight stays symmetric ...
+    assert float(lateral.diagonal().abs().max()) == 0.0  # ... with a zero diagonal
+
+
+def test_fast_steps_under_adam_are_the_size_of_the_slow_steps():
+    # The measurement behind the fix: on a 64-32 RBM under Adam the old fast weights were smaller
+    # than one slow step. Now, with no decay, they are the last slow step itself.
+    g = torch.Generator().manual_seed(0)
+    model = el.rbm(64, 32, generator=g)
+    data = torch.bernoulli(torch.full((50, 64), 0.3), generator=g)
+    sampler = el.FastWeightsSampler(model, num_particles=20, generator=g, fast_decay=0.0)
+    objective = el.TwoPhaseObjective(model, el.MeanField(model), sampler)
+    optimizer = torch.optim.Adam(model.parameters(), lr=0.01)
+    for _ in range(3):
+        before = model.couplings[0].weight.detach().clone()
+        objective(data).backward()
+        optimizer.step()
+        optimizer.zero_grad()
     objective(data)
-    first = objective.last.difference
-    expected_biases = [0.3 * d for d in first.means]
-    for fast, expected in zip(sampler.fast_biases, expected_biases):
-        torch.testing.assert_close(fast, expected)
-    torch.testing.assert_close(sampler.fast_weights[0], 0.3 * first.pairs[0])
-    lateral = 0.3 * (first.pairs[1] - torch.diag(first.pairs[1].diagonal()))
-    torch.testing.assert_close(sampler.fast_weights[1], lateral)  # symmetric, zero diagonal
-    objective(data)
-    second = objective.last.difference
-    for fast, old, new in zip(sampler.fast_biases, first.means, second.means):
-        torch.testing.assert_close(fast, 0.5 * 0.3 * old + 0.3 * new)
-    # The ordinary parameters are untouched by the fast weights (no optimizer step was taken).
-    assert all(p.grad is None for p in model.parameters())
+    slow_step = model.couplings[0].weight.detach() - before
+    torch.testing.assert_close(sampler.fast_weights[0], slow_step)
+    assert 0.5 < float(sampler.fast_weights[0].square().mean().sqrt()) / 0.01 < 1.5
+
+
+def test_a_reset_or_a_first_call_takes_no_fast_step():
+    model, sampler, data = setup()
+    with torch.no_grad():  # edited before the first call: not a training step
+        model.couplings[0].weight.add_(1.0)
+    sampler.statistics()
+    assert all(float(f.abs().sum()) == 0 for f in sampler.fast_biases + sampler.fast_weights)
+    with torch.no_grad():
+        model.couplings[0].weight.add_(1.0)
+    sampler.reset_fast_weights()
+    sampler.statistics()
+    assert float(sampler.fast_weights[0].abs().sum()) == 0
+    with torch.no_grad():  # negative control: a change between two calls is a step
+        model.couplings[0].weight.add_(1.0)
+    sampler.statistics()
+    torch.testing.assert_close(sampler.fast_weights[0], torch.ones_like(sampler.fast_weights[0]))
 
 
 def test_with_zero_fast_weights_the_chains_are_the_plain_chains():
@@ -66,32 +118,50 @@ def test_with_zero_fast_weights_the_chains_are_the_plain_chains():
 
 
 def test_fast_weights_survive_a_state_dict_round_trip():
-    model, sampler, data = setup(fast_learning_rate=0.1)
+    model, sampler, data = setup()
     objective = el.TwoPhaseObjective(model, el.MeanField(model), sampler)
-    objective(data)
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.1)
+    for _ in range(2):
+        objective(data).backward()
+        optimizer.step()
+    sampler.statistics()
     state = {k: v.clone() for k, v in sampler.state_dict().items()}
     assert "fast_weight_0" in state and float(state["fast_weight_0"].abs().sum()) > 0
     after = [x.clone() for x in sampler()]
-    _, fresh, _ = setup(fast_learning_rate=0.1)
+    _, fresh, _ = setup()
     fresh.load_state_dict(state)
     assert all(torch.equal(a, b) for a, b in zip(after, fresh()))
 
 
-def test_a_refused_step_leaves_the_fast_weights_alone():
-    model, sampler, data = setup(fast_learning_rate=0.1)
+def test_a_refused_step_moves_nothing_and_the_fast_weights_only_decay(monkeypatch):
+    model, sampler, data = setup(fast_decay=0.5)
     objective = el.TwoPhaseObjective(model, el.MeanField(model), sampler)
-    honest = sampler.statistics
-    sampler.statistics = lambda: Statistics([m * float("nan") for m in honest().means], honest().pairs)
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.1)
+    for _ in range(2):
+        objective(data).backward()
+        optimizer.step()
+        optimizer.zero_grad()
+    honest = el.PersistentSampler.statistics
+    monkeypatch.setattr(
+        el.PersistentSampler,
+        "statistics",
+        lambda self: Statistics([m * float("nan") for m in honest(self).means], []),
+    )
     with pytest.raises(FloatingPointError):
         objective(data)
-    assert all(float(f.abs().sum()) == 0 for f in sampler.fast_biases + sampler.fast_weights)
+    monkeypatch.undo()
+    before = [f.clone() for f in sampler.fast_biases + sampler.fast_weights]
+    assert float(before[2].abs().sum()) > 0
+    objective(data)  # the refused step applied nothing: no new fast step, only the decay
+    for after, b in zip(sampler.fast_biases + sampler.fast_weights, before):
+        torch.testing.assert_close(after, 0.5 * b)
 
 
 @pytest.mark.parametrize(
     ("options", "fragment"),
     [
         ({"fast_decay": 1.0}, "fast_decay must lie in"),
-        ({"fast_learning_rate": -1.0}, "fast_learning_rate must be"),
+        ({"fast_scale": -1.0}, "fast_scale must be"),
     ],
 )
 def test_bad_fast_weight_arguments(options, fragment):
