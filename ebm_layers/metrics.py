@@ -36,19 +36,37 @@ __all__ = [
     "LogLikelihood",
     "SplitMetrics",
     "evaluate",
+    "exact_free_energy",
     "exact_log_likelihood",
     "free_energy_gap",
     "log_likelihood",
+    "posterior_states",
     "pseudo_log_likelihood",
     "reconstruction_error",
 ]
 
 METHODS = ("auto", "exact", "mean-field", "importance")
+# What each kind of number is, in plain words: with log Z exact, and with log Z estimated by forward
+# AIS (which underestimates log Z on average, Jensen's inequality, so it pushes a log-likelihood up).
+# "Bound" only where the number is one.
 LABELS = {
-    "exact": "exact",
-    "mean-field": "lower bound (mean field)",
-    "importance": "estimate (importance sampling, mean-field proposal)",
+    ("exact", False): "exact",
+    ("exact", True): "estimate: exact free energy minus an AIS log Z, so high on average",
+    ("mean-field", False): "lower bound (mean field)",
+    ("mean-field", True): "mean-field value minus an AIS log Z: not a bound, its error has no known sign",
+    ("importance", False): "estimate (importance sampling, mean-field proposal): low on average",
+    ("importance", True): (
+        "estimate: importance sampling (low on average) minus an AIS log Z (which pushes it up): "
+        "its error has no known sign"
+    ),
 }
+REVERSE_LABEL = (
+    "reverse AIS: low on average for the annealing process's own distribution, which nears the "
+    "model's as num_betas grows; usually below the model's log-likelihood, but not a bound on it"
+)
+# method="auto" enumerates a deep model's hidden states per example up to this many (a 64-20-10 chain
+# needs 2^10); beyond, the mean-field bound.
+CHEAP_POSTERIOR_STATES = 2**12
 # Mean field for metrics runs to a residual near the dtype's resolution (float64: 1e-6).
 MEAN_FIELD_TOL = 1e-6
 MEAN_FIELD_MAX_ITER = 1000
@@ -83,11 +101,9 @@ class LogLikelihood:
 
     @property
     def label(self) -> str:
-        """What ``values`` are, in plain words (for reports and plot legends)."""
-        words = LABELS[self.method]
-        if self.log_z_estimated:
-            return f"{words}, but with an estimated log Z, so only an estimate"
-        return words
+        """What ``values`` are, in plain words (for reports and plot legends): ``"bound"`` only
+        where they are one, and the direction of their error where it is known."""
+        return LABELS[self.method, self.log_z_estimated]
 
 
 def _check_log_z(log_z: object) -> tuple[float, bool]:
@@ -116,8 +132,9 @@ def log_likelihood(
 ) -> LogLikelihood:
     r"""Per-example ``log p(v)``: exact, a mean-field lower bound, or an importance-sampled estimate.
 
-    - ``"exact"``: ``-F(v) - log Z``, for models with a closed-form free energy (no two
-      non-visible units coupled); ``ValueError`` otherwise.
+    - ``"exact"``: ``-F(v) - log Z`` with the exact free energy (:func:`exact_free_energy`: closed
+      form, or the hidden states enumerated per example); ``ValueError`` when that needs more
+      than ``MAX_STATES`` states per example.
     - ``"mean-field"``: the variational bound
       :math:`\log p(v) \ge -E(v, \mu) + H(q) - \log Z` with ``q`` the factorised posterior of
       mean-field marginals ``mu`` (the energy is multilinear, so ``E`` at the marginals is the
@@ -127,8 +144,11 @@ def log_likelihood(
       drawn (the fewest units); the others are summed out in closed form, so an RBM needs no
       draw and gets the exact value. ``exp`` of it is unbiased for ``p(v)``, so in expectation it
       lies below ``log p(v)`` (Jensen), and usually much closer to it than the bound.
-    - ``"auto"`` (default): ``"exact"`` when the model has a closed-form free energy, else
-      ``"mean-field"``.
+    - ``"auto"`` (default): ``"exact"`` when the model has a closed-form free energy or needs at
+      most ``CHEAP_POSTERIOR_STATES`` (2^12) states per example, else ``"mean-field"``.
+
+    ``result.label`` says what the values are; with ``log_z`` estimated by AIS an exact or
+    mean-field value becomes an estimate (see ``LABELS``).
 
     Mean field and sampling run in float64 on a float64 copy of a float32 model; the model
     itself is not changed. Values are detached; :func:`exact_log_likelihood` is differentiable.
@@ -153,7 +173,7 @@ def log_likelihood(
         >>> model = el.dbm(6, 4, 3, generator=torch.Generator().manual_seed(0))
         >>> result = el.log_likelihood(model, torch.ones(2, 6), el.exact_log_partition(model))
         >>> result.values.shape, result.label
-        (torch.Size([2]), 'lower bound (mean field)')
+        (torch.Size([2]), 'exact')
     """
     check_model(model)
     if method not in METHODS:
@@ -162,9 +182,9 @@ def log_likelihood(
     v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
     log_z, estimated = _check_log_z(log_z)
     if method == "auto":
-        method = "exact" if model.has_free_energy else "mean-field"
+        method = "exact" if posterior_states(model) <= CHEAP_POSTERIOR_STATES else "mean-field"
     if method == "exact":
-        log_f = -model.free_energy(v, dtype=torch.float64)
+        log_f = -exact_free_energy(model, v)
     else:
         generator = resolve_generator(generator) if method == "importance" else None
         (log_f,) = _variational_log_f(model, v, (method,), num_samples, generator)
@@ -244,12 +264,57 @@ def _log_weights(
 def exact_log_likelihood(model: EnergyModel, v: Tensor, *, max_states: int = MAX_STATES) -> Tensor:
     """Exact ``log p(v) = -F(v) - log Z`` per example, float64 ``(B,)``, differentiable.
 
-    For models with a closed-form free energy (no two non-visible units coupled) whose
-    partition function can be enumerated; ``ValueError`` otherwise.
+    ``F(v)`` is the closed-form free energy where it exists; otherwise (a deep model) the hidden
+    layers that make the rest summable given ``v`` are enumerated for every example
+    (:func:`exact_free_energy`). ``ValueError`` when either sum needs more than ``max_states`` states.
     """
     check_model(model)
-    free_energy = model.free_energy(v, dtype=torch.float64)
-    return -free_energy - exact_log_partition(model, max_states=max_states)
+    return -exact_free_energy(model, v, max_states=max_states) - exact_log_partition(
+        model, max_states=max_states
+    )
+
+
+def exact_free_energy(model: EnergyModel, v: Tensor, *, max_states: int = MAX_STATES) -> Tensor:
+    """Exact free energy ``F(v) = -log sum_h exp(-E(v, h))`` ``(B,)`` in float64, differentiable.
+
+    In closed form where the model has one; otherwise the fewest hidden units whose states make
+    the other layers summable given ``v`` (:func:`posterior_states`) are enumerated per example,
+    the others summed out in closed form, in chunks with a log-sum-exp. ``ValueError`` when that
+    needs more than ``max_states`` states per example.
+    """
+    check_model(model)
+    if model.has_free_energy:
+        return model.free_energy(v, dtype=torch.float64)
+    v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
+    layers, total = _sampled_layers(model), posterior_states(model)
+    if total > max_states:
+        raise ValueError(
+            f"the exact free energy of this model enumerates 2^{total.bit_length() - 1} states of layers "
+            f"{list(layers)} per example, more than max_states={max_states:,}"
+        )
+    biases = [b.to(torch.float64) for b in model.biases()]
+    weights = [w.to(torch.float64) for w in model.weights()]
+    sizes = [model.sizes[i] for i in layers]
+    shifts = torch.arange(sum(sizes))
+    v = v.to(torch.float64)
+    rows = max(1, min(total, _CHUNK_ELEMENTS // (v.shape[0] * sum(model.sizes))))
+    parts = []
+    for start in range(0, total, rows):
+        codes = torch.arange(start, min(start + rows, total))
+        bits = ((codes[:, None] >> shifts) & 1).to(torch.float64)  # (S, sum(sizes))
+        count = len(codes)
+        given = {0: v.repeat_interleave(count, dim=0)}
+        for i, states in zip(layers, bits.split(sizes, dim=1)):
+            given[i] = states.repeat(v.shape[0], 1)
+        log_f = -functional.marginal_free_energy(given, biases, weights, model.edges)
+        parts.append(torch.logsumexp(log_f.view(v.shape[0], count), dim=1))
+    return -torch.logsumexp(torch.stack(parts, dim=1), dim=1)
+
+
+def posterior_states(model: EnergyModel) -> int:
+    """States per example that :func:`exact_free_energy` enumerates (1 with a closed form)."""
+    check_model(model)
+    return 2 ** sum(model.sizes[i] for i in _sampled_layers(model))
 
 
 @torch.no_grad()
@@ -407,11 +472,13 @@ class SplitMetrics:
     """The metrics of one data set in an :class:`Evaluation` (means over its examples, in nats).
 
     Attributes:
-        log_likelihood: mean ``log p(v)``: exact with a closed-form free energy, else the
-            mean-field lower bound; ``log_likelihood_label`` says which.
+        log_likelihood: mean ``log p(v)``: exact where the free energy is cheap to compute exactly
+            (a closed form, or at most 2^12 hidden states per example), else the mean-field
+            value; ``log_likelihood_label`` says what kind of number it is.
         log_likelihood_label: what that number is, in plain words.
-        importance_log_likelihood: without a closed-form free energy, the importance-sampled
-            estimate with the mean-field proposal (closer than the bound); else ``None``.
+        importance_log_likelihood: where it is not exact, the importance-sampled estimate with
+            the mean-field proposal (closer than the mean-field value); else ``None``.
+        importance_label: what that number is, in plain words, or ``None``.
         conservative_log_likelihood: mean reverse-annealing estimate (low on average) over
             ``conservative_examples`` examples, or ``None`` when not computed for this set or not
             available for the model.
@@ -427,6 +494,7 @@ class SplitMetrics:
     log_likelihood: float
     log_likelihood_label: str
     importance_log_likelihood: float | None
+    importance_label: str | None
     conservative_log_likelihood: float | None
     conservative_examples: int | None
     conservative_gap: float | None
@@ -464,7 +532,7 @@ class Evaluation:
         rows = [
             ("log-likelihood (1)", "log_likelihood"),
             ("importance-sampled estimate (2)", "importance_log_likelihood"),
-            ("conservative, reverse AIS (3)", "conservative_log_likelihood"),
+            ("reverse AIS (3)", "conservative_log_likelihood"),
             ("pseudo-log-likelihood", "pseudo_log_likelihood"),
             ("reconstruction error", "reconstruction_error"),
         ]
@@ -484,14 +552,11 @@ class Evaluation:
         if self.free_energy_gap is not None:
             lines.append(f"free energy gap, test - train: {self.free_energy_gap:.3f}")
         lines.append(f"(1) {self.train.log_likelihood_label}")
-        if self.train.importance_log_likelihood is not None:
-            lines.append("(2) estimate by importance sampling with the mean-field posterior as proposal")
+        if self.train.importance_label is not None:
+            lines.append(f"(2) {self.train.importance_label}")
         for name, split in splits:
             if split.conservative_examples is not None:
-                lines.append(
-                    f"(3) reverse annealing on {split.conservative_examples} {name} examples: "
-                    "a stochastic estimate that is low on average"
-                )
+                lines.append(f"(3) on {split.conservative_examples} {name} examples, {REVERSE_LABEL}")
         lines.extend(f"WARNING: {text}" for text in self.warnings)
         return "\n".join(lines)
 
@@ -514,16 +579,18 @@ def evaluate(
 
     ``log Z`` is exact when at most 2^20 states need enumerating, else estimated by forward AIS
     (:func:`~ebm_layers.partition.ais_log_partition` with ``data`` for the base rates,
-    ``num_chains``, ``num_betas``), unless given as ``log_z``. The log-likelihood is exact where
-    the model has a closed-form free energy, else the mean-field lower bound; with an estimated
-    ``log Z`` it is only an estimate, optimistic on average (forward AIS underestimates ``log Z``
-    on average). Without a closed-form free energy, an importance-sampled estimate (100 draws
-    from the mean-field posterior per example) is reported too. With ``reverse`` (and a model it
-    applies to), reverse annealing gives the conservative counterpart on ``test`` (or on ``data``
-    without test data), on a random subset of at most ``reverse_examples`` examples since it
-    costs a whole annealing run per example; the truth lies, on average, between the two
-    stochastic estimates, and the report shows both and their gap on that subset. Printing the
-    result gives an aligned table with warnings.
+    ``num_chains``, ``num_betas``), unless given as ``log_z``. The free energy ``F(v)`` is exact
+    where that is cheap (a closed form, or at most 2^12 hidden states per example enumerated, as
+    for a 64-20-10 chain); otherwise the report gives the mean-field value and an
+    importance-sampled estimate (100 draws from the mean-field posterior per example). Each row
+    is labelled with what kind of number it is (``LABELS``): with an exact ``log Z`` the
+    mean-field value is a lower bound; with an AIS ``log Z`` (low on average) nothing is a bound.
+    With ``reverse`` (and a model it applies to), reverse annealing on ``test`` (or on ``data``
+    without test data) gives a value low on average for the annealing process's distribution, on a
+    random subset of at most ``reverse_examples`` examples since it costs a whole annealing run
+    per example; the report shows it and its gap to the best estimate on that subset: a small gap
+    between the two annealing directions is the evidence that both are close. Printing the result
+    gives an aligned table with warnings.
 
     Args:
         model: the :class:`EnergyModel`.
@@ -531,7 +598,7 @@ def evaluate(
         test: ``(M, n_0)`` held-out data.
         log_z: a known ``log Z`` (number, 0-d tensor or AIS estimate) to use instead.
         num_chains, num_betas: AIS settings (reverse annealing uses ``num_betas`` too).
-        reverse: compute the conservative reverse-annealing estimate.
+        reverse: compute the reverse-annealing estimate.
         reverse_examples: run it on at most this many examples (drawn at random with ``generator``).
         generator: the ``torch.Generator`` of every draw.
         progress: show tqdm bars for the annealing runs.
@@ -562,12 +629,13 @@ def evaluate(
     log_z_value, estimated = _check_log_z(log_z)
     cautions = [] if estimate is None or estimate.warning is None else [estimate.warning]
     closed_form = model.has_free_energy
+    exact = posterior_states(model) <= CHEAP_POSTERIOR_STATES
     reversible = can_reverse_anneal(model)
     target = data if test is None else test
 
     def metrics_of(x: Tensor) -> SplitMetrics:
-        if closed_form:
-            likelihood = best = log_likelihood(model, x, log_z)
+        if exact:
+            likelihood = best = log_likelihood(model, x, log_z, method="exact")
         else:  # the bound and the importance estimate from one mean-field run
             bound, importance = _variational_log_f(model, x, ("mean-field", "importance"), 100, generator)
             likelihood = LogLikelihood(bound - log_z_value, "mean-field", log_z_value, estimated)
@@ -584,7 +652,8 @@ def evaluate(
         return SplitMetrics(
             log_likelihood=likelihood.mean,
             log_likelihood_label=likelihood.label,
-            importance_log_likelihood=None if closed_form else best.mean,
+            importance_log_likelihood=None if exact else best.mean,
+            importance_label=None if exact else best.label,
             conservative_log_likelihood=conservative,
             conservative_examples=examples,
             conservative_gap=gap,

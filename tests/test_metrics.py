@@ -71,7 +71,7 @@ def test_every_method_is_exact_on_closed_form_models(shape):
 def test_mean_field_bound_below_and_importance_estimate_near_exact(shape):
     model = randomize(build(shape, sizes_of(shape)), seed=2)
     v, log_p, log_z = exact_log_p(model)
-    bound = el.log_likelihood(model, v, log_z)
+    bound = el.log_likelihood(model, v, log_z, method="mean-field")
     assert (bound.method, bound.label) == ("mean-field", "lower bound (mean field)")
     # exact enumeration (mathematics), Jensen's inequality: the bound never exceeds log p(v).
     gaps = log_p - bound.values
@@ -79,12 +79,82 @@ def test_mean_field_bound_below_and_importance_estimate_near_exact(shape):
     estimate = el.log_likelihood(
         model, v, log_z, method="importance", num_samples=2000, generator=torch.Generator().manual_seed(0)
     )
-    assert estimate.label == "estimate (importance sampling, mean-field proposal)"
+    assert estimate.label == "estimate (importance sampling, mean-field proposal): low on average"
     # exact enumeration (mathematics): the estimate lands much nearer log p(v) than the bound
     # (measured: mean errors 0.0013-0.0043 against mean gaps 0.055-0.20, 34 to 53 times smaller).
     error = (estimate.values - log_p).abs().mean()
     assert error < gaps.mean() / 10, (
         f"importance error {error.item():.3g}, mean-field gap {gaps.mean().item():.3g}"
+    )
+
+
+@pytest.mark.parametrize("shape", DEEP)
+def test_deep_models_get_the_exact_log_likelihood_where_enumeration_is_cheap(shape):
+    model = randomize(build(shape, sizes_of(shape)), seed=2)
+    v, log_p, log_z = exact_log_p(model)
+    # exact enumeration (mathematics): brute force over every joint state against the per-example
+    # enumeration of the fewest hidden units with the rest summed out in closed form.
+    result = el.log_likelihood(model, v, log_z)
+    assert (result.method, result.label) == ("exact", "exact")
+    assert_close(result.values, log_p)
+    assert_close(el.exact_log_likelihood(model, v), log_p)
+    # negative control: the mean-field value (the method "auto" chose before) is below it.
+    assert (el.log_likelihood(model, v, log_z, method="mean-field").values < log_p - 1e-6).any()
+
+
+def test_exact_free_energy_of_a_deep_model_is_differentiable():
+    model = randomize(build("chain3", sizes_of("chain3")), seed=4)
+    v = torch.bernoulli(
+        torch.full((3, 4), 0.5, dtype=torch.float64), generator=torch.Generator().manual_seed(0)
+    )
+    weight = model.couplings[1].weight
+    (grad,) = torch.autograd.grad(el.exact_free_energy(model, v).sum(), weight)
+    # Central differences (mathematics), float64.
+    expected = torch.zeros_like(grad)
+    with torch.no_grad():
+        for index in np.ndindex(*weight.shape):
+            values = []
+            for step in (1e-6, -1e-6):
+                weight[index] += step
+                values.append(float(el.exact_free_energy(model, v).sum()))
+                weight[index] -= step
+            expected[index] = (values[0] - values[1]) / 2e-6
+    torch.testing.assert_close(grad, expected, rtol=1e-6, atol=1e-8)
+    assert float(grad.abs().max()) > 0.01
+
+
+def test_the_chain_of_the_issue_is_cheap_to_evaluate_exactly():
+    # A 64-20-10 chain: 2^20 states for log Z, 2^10 per example for F(v).
+    model = el.dbm(64, 20, 10, generator=torch.Generator().manual_seed(0))
+    assert el.posterior_states(model) == 2**10
+    data = torch.bernoulli(torch.full((6, 64), 0.3), generator=torch.Generator().manual_seed(1))
+    report = el.evaluate(model, data, reverse=False, progress=False)
+    assert report.log_z_source == "exact (enumeration)"
+    assert report.train.log_likelihood_label == "exact" and report.train.importance_log_likelihood is None
+    exact = float(el.exact_log_likelihood(model, data).detach().mean())
+    assert report.train.log_likelihood == pytest.approx(exact)
+
+
+def test_labels_say_bound_only_where_the_number_is_one():
+    # Jensen's inequality (mathematics): forward AIS's log Z is low on average, the log of an
+    # unbiased estimate of p(v) is low on average; a mean-field value is a bound only with an
+    # exact log Z; reverse AIS is low on average for the annealing process's distribution ("Accurate
+    # and Conservative Estimates of MRF Log-likelihood using Reverse Annealing", AISTATS 2015).
+    assert metrics.LABELS == {
+        ("exact", False): "exact",
+        ("exact", True): "estimate: exact free energy minus an AIS log Z, so high on average",
+        ("mean-field", False): "lower bound (mean field)",
+        ("mean-field", True): "mean-field value minus an AIS log Z: not a bound, its error has no known sign",
+        ("importance", False): "estimate (importance sampling, mean-field proposal): low on average",
+        ("importance", True): "estimate: importance sampling (low on average) minus an AIS log Z (which "
+        "pushes it up): its error has no known sign",
+    }
+    for key, text in [*metrics.LABELS.items(), ("reverse", metrics.REVERSE_LABEL)]:
+        claims_a_bound = "bound" in text.replace("not a bound", "")
+        assert claims_a_bound == (key == ("mean-field", False)), text
+    assert (
+        "not a bound" in metrics.REVERSE_LABEL
+        and "annealing process's own distribution" in metrics.REVERSE_LABEL
     )
 
 
@@ -141,7 +211,7 @@ def test_log_z_forms_and_labels():
         assert not result.log_z_estimated and torch.equal(result.values, as_float.values)
     estimated = el.log_likelihood(model, v, SimpleNamespace(log_z=log_z.item()))
     assert estimated.log_z_estimated and torch.equal(estimated.values, as_float.values)
-    assert estimated.label == "lower bound (mean field), but with an estimated log Z, so only an estimate"
+    assert estimated.label == "estimate: exact free energy minus an AIS log Z, so high on average"
     generator = torch.Generator().manual_seed(0)
     annealed = ais_log_partition(
         model, num_chains=10, num_betas=50, base="uniform", generator=generator, progress=False
@@ -314,10 +384,10 @@ BAD_CALLS = [
     ("model not a model", lambda m: el.log_likelihood(m.layers[0], V, 0.0), TypeError, "model must be"),
     ("unknown method", lambda m: el.log_likelihood(m, V, 0.0, method="bogus"), ValueError, "'bogus'"),
     (
-        "exact without closed form",
-        lambda m: el.log_likelihood(m, V, 0.0, method="exact"),
+        "exact free energy beyond max_states",
+        lambda m: el.exact_free_energy(m, V, max_states=4),
         ValueError,
-        "closed-form",
+        "more than max_states=4",
     ),
     ("no samples", lambda m: el.log_likelihood(m, V, 0.0, num_samples=0), ValueError, "num_samples"),
     ("fractional samples", lambda m: el.log_likelihood(m, V, 0.0, num_samples=2.5), TypeError, "num_samples"),
