@@ -17,6 +17,7 @@ __all__ = [
     "check_batch",
     "check_binary_batch",
     "check_count",
+    "check_data",
     "check_example_index",
     "check_index",
     "check_model",
@@ -95,15 +96,19 @@ def check_batch(
     dtype: torch.dtype | None = None,
     batch: int | None = None,
 ) -> Tensor:
-    """Check a batch of states or data: a floating ``(B, width)`` tensor, ``B > 0``, finite, in [0, 1].
+    """Check a batch of states or data: a ``(B, width)`` tensor, ``B > 0``, finite, in [0, 1].
 
-    Binary states and Bernoulli means are both accepted. ``dtype`` (the model's) and ``batch``
-    (the batch size of other tensors passed with this one) are enforced when given.
+    Binary states and Bernoulli means are both accepted. Binary data kept as ``bool`` or an
+    integer dtype (``uint8``...) is cast to ``dtype`` (default: torch's default dtype) and
+    returned; a floating tensor must already have ``dtype`` (the model's), as torch modules expect.
+    ``batch`` (the batch size of other tensors passed with this one) is enforced when given.
     """
     if not isinstance(x, Tensor):
         raise TypeError(f"{name} must be a torch.Tensor, got {type(x).__name__}")
-    if not x.is_floating_point():
-        raise TypeError(f"{name} must have a floating dtype, got {x.dtype}")
+    if x.is_complex():
+        raise TypeError(f"{name} must hold real values, got {x.dtype}")
+    if not x.is_floating_point():  # bool or integer: binary data as people keep it
+        x = x.to(torch.get_default_dtype() if dtype is None else dtype)
     if dtype is not None and x.dtype != dtype:
         raise TypeError(
             f"{name} has dtype {x.dtype} but the model's parameters are {dtype}; "
@@ -129,6 +134,16 @@ def check_batch(
     return x
 
 
+def check_data(name: str, x: object, width: int, *, dtype: torch.dtype) -> Tensor:
+    """:func:`check_batch` for the conveniences (``fit``, ``pretrain``, ``evaluate``): also numpy
+    arrays (anything with ``__array__``) and floating data of another precision, cast to ``dtype``."""
+    if not isinstance(x, Tensor) and hasattr(x, "__array__"):
+        x = torch.as_tensor(x)
+    if isinstance(x, Tensor) and x.is_floating_point() and x.dtype != dtype:
+        x = x.to(dtype)
+    return check_batch(name, x, width, dtype=dtype)
+
+
 def check_binary_batch(name: str, x: object, width: int, *, dtype: torch.dtype | None = None) -> Tensor:
     """Check a batch of binary data: :func:`check_batch`, and every value exactly 0 or 1."""
     x = check_batch(name, x, width, dtype=dtype)
@@ -149,11 +164,11 @@ def check_states(name: str, states: object, sizes: Sequence[int], dtype: torch.d
         )
     if len(states) != len(sizes):
         raise ValueError(f"{name} must hold {len(sizes)} tensors (one per layer), got {len(states)}")
-    batch = None
+    batch, checked = None, []
     for i, (x, width) in enumerate(zip(states, sizes)):
-        check_batch(f"{name}[{i}]", x, width, dtype=dtype, batch=batch)
+        checked.append(check_batch(f"{name}[{i}]", x, width, dtype=dtype, batch=batch))
         batch = x.shape[0]
-    return list(states)
+    return checked
 
 
 def check_example_index(name: str, index: object, num_examples: int, batch: int) -> Tensor:

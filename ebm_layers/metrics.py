@@ -17,7 +17,7 @@ from torch import Tensor
 from torch.nn.functional import softplus
 
 from . import functional
-from ._checks import check_batch, check_binary_batch, check_model, check_real, check_size
+from ._checks import check_batch, check_binary_batch, check_data, check_model, check_real, check_size
 from ._random import resolve_generator
 from .enumeration import MAX_STATES
 from .graph import smallest_cover
@@ -607,9 +607,9 @@ def evaluate(
         an :class:`Evaluation`.
     """
     check_model(model)
-    data = check_batch("data", data, model.sizes[0], dtype=model.dtype)
+    data = check_data("data", data, model.sizes[0], dtype=model.dtype)
     if test is not None:
-        test = check_batch("test", test, model.sizes[0], dtype=model.dtype)
+        test = check_data("test", test, model.sizes[0], dtype=model.dtype)
     reverse_examples = check_size("reverse_examples", reverse_examples)
     generator = resolve_generator(generator)
     estimate, source = None, "given"

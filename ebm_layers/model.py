@@ -143,10 +143,11 @@ class EnergyModel(nn.Module):
     ) -> Tensor:
         """Validate ``states`` (reported under ``names``), then compute their free energy in ``dtype``."""
         self.check_summable(states.keys())
-        batch = None
+        batch, checked = None, {}
         for i, x in states.items():
-            check_batch(names[i], x, self.sizes[i], dtype=self.dtype, batch=batch)
+            checked[i] = check_batch(names[i], x, self.sizes[i], dtype=self.dtype, batch=batch)
             batch = x.shape[0]
+        states = checked
         biases, weights = self.biases(), self.weights()
         if dtype is not None:
             biases, weights = [b.to(dtype) for b in biases], [w.to(dtype) for w in weights]
@@ -174,7 +175,7 @@ class EnergyModel(nn.Module):
         common practice, "A Practical Guide to Training Restricted Boltzmann Machines" (Hinton,
         UTML TR 2010-003, 2010), section 8; the pseudocount keeps constant units finite.
         """
-        check_batch("data", data, self.sizes[0])
+        data = check_batch("data", data, self.sizes[0])
         pseudocount = check_positive_real("pseudocount", pseudocount)
         self.layers[0].bias.copy_(F.base_rate_logits(data, pseudocount))
 

@@ -171,6 +171,8 @@ class TwoPhaseObjective(nn.Module):
         if not with_index and index is not None:
             raise ValueError("index is only used with DataParticles; MeanField needs no index")
         self.check_parameters()
+        if isinstance(v, Tensor) and not (v.is_floating_point() or v.is_complex()):
+            v = v.to(model.dtype)  # binary data kept as bool or uint8
         data = self.positive.statistics(v, index) if with_index else self.positive.statistics(v)
         fantasy = self.negative.statistics()
         difference = Statistics(

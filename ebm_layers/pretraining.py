@@ -9,7 +9,7 @@ from torch import Tensor, nn
 from torch.nn.utils import parametrize
 
 from . import functional as F
-from ._checks import check_batch, check_count, check_model
+from ._checks import check_count, check_data, check_model
 from ._random import resolve_generator
 from .graph import is_chain
 from .inference import MeanField
@@ -82,7 +82,7 @@ def pretrain(
             f"pretrain needs a chain of dense couplings (k, k + 1) as built by dbm(), "
             f"got edges {list(model.edges)}"
         )
-    data = check_batch("data", data, model.sizes[0], dtype=model.dtype)
+    data = check_data("data", data, model.sizes[0], dtype=model.dtype)
     epochs = check_count("epochs", epochs)
     generator = resolve_generator(generator)
     last = len(model.couplings) - 1

@@ -22,7 +22,7 @@ from torch import Tensor
 from torch.utils.data import DataLoader, DistributedSampler, RandomSampler
 from tqdm.auto import tqdm
 
-from ._checks import check_batch, check_count, check_model, check_positive_real, check_size
+from ._checks import check_count, check_data, check_model, check_positive_real, check_size
 from ._random import resolve_generator
 from .distributed import current_world, rank_generator, rank_states, wrap_distributed
 from .fast_weights import FastWeightsSampler
@@ -190,10 +190,10 @@ def fit(
         if batch_size is not None:
             raise ValueError(f"batch_size={batch_size} is set by the DataLoader; leave it None")
     else:
-        data = check_batch("data", data, model.sizes[0], dtype=model.dtype)
+        data = check_data("data", data, model.sizes[0], dtype=model.dtype)
         batch_size = DEFAULT_BATCH_SIZE if batch_size is None else check_size("batch_size", batch_size)
     if validation is not None:
-        validation = check_batch("validation", validation, model.sizes[0], dtype=model.dtype)
+        validation = check_data("validation", validation, model.sizes[0], dtype=model.dtype)
     callbacks = _check_callbacks(callbacks)
     generator = resolve_generator(generator)
     if not isinstance(distributed, bool):

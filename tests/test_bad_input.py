@@ -26,10 +26,16 @@ MODEL_CASES = [
     ("energy: wrong ndim", lambda m: m.energy(_states(torch.ones(6))), ValueError, "2-D"),
     ("energy: empty batch", lambda m: m.energy(_states(torch.ones(0, 6))), ValueError, "empty batch"),
     (
-        "energy: integer dtype",
-        lambda m: m.energy(_states(torch.ones(2, 6, dtype=torch.long))),
+        "energy: integer states other than 0 and 1",
+        lambda m: m.energy(_states(torch.full((2, 6), 2, dtype=torch.long))),
+        ValueError,
+        "must lie in [0, 1]",
+    ),
+    (
+        "energy: complex dtype",
+        lambda m: m.energy(_states(torch.ones(2, 6, dtype=torch.complex64))),
         TypeError,
-        "floating dtype",
+        "real values",
     ),
     (
         "energy: dtype differs from model",
@@ -235,10 +241,10 @@ CONSTRUCTION_CASES = [
         "layers 1 and 2 are coupled",
     ),
     (
-        "exact_log_likelihood of a 3-layer chain",
-        lambda: el.exact_log_likelihood(el.dbm(3, 2, 2), torch.ones(1, 3)),
+        "exact_log_likelihood of a chain beyond max_states",
+        lambda: el.exact_log_likelihood(el.dbm(3, 2, 2), torch.ones(1, 3), max_states=2),
         ValueError,
-        "no closed-form free energy",
+        "more than max_states=2",
     ),
     (
         "free_energy with hidden lateral couplings",
