@@ -33,7 +33,8 @@ class EnergyModel(nn.Module):
 
     Shape:
         - ``states``: a list with one ``(B, n_i)`` tensor per layer, values in [0, 1].
-        - ``energy(states)``, ``free_energy(v)``: ``(B,)``.
+        - ``energy(states)``, ``free_energy(v)``: ``(B,)``; ``model(v)`` is ``free_energy(v)`` and
+          ``model(states)`` is ``energy(states)``.
         - ``conditional_logits(states, i)``: ``(B, n_i)``.
 
     Attributes:
@@ -59,6 +60,7 @@ class EnergyModel(nn.Module):
             classes=colour_classes(len(layers), self.edges),
             unitwise=frozenset(a for a, b in self.edges if a == b),
         )
+        self._built_weights = self._weights_fingerprint()
 
     @property
     def schedule(self) -> UpdateSchedule:
@@ -95,6 +97,29 @@ class EnergyModel(nn.Module):
             layer.reset_parameters()
         for coupling in self.couplings:
             coupling.reset_parameters(generator)
+        self._built_weights = self._weights_fingerprint()
+
+    def untrained(self) -> bool:
+        """Whether every weight still holds the value it got when the model was built (or last
+        ``reset_parameters``): a trained, loaded or pretrained model is not untrained. ``fit``
+        pretrains and sets visible biases only for untrained models."""
+        return self._weights_fingerprint() == self._built_weights
+
+    @torch.no_grad()
+    def _weights_fingerprint(self) -> tuple[tuple[float, float], ...]:
+        """Sum and sum of squares of every weight, taken in float32 so that a dtype round trip
+        (``.double()``, ``.float()``) keeps it; any training step changes it."""
+        values = [w.detach().float().double() for w in self.weights()]
+        return tuple((float(w.sum()), float(w.square().sum())) for w in values)
+
+    def forward(self, x: Tensor | Sequence[Tensor]) -> Tensor:
+        """``model(v)``: the free energy ``F(v)`` ``(B,)`` of visible data ``(B, n_0)``, the usual
+        output of an energy-based model (lower for data the model finds more probable; ``-F(v)``
+        is ``log p(v)`` up to ``log Z``), differentiable; as :meth:`free_energy`, only where it has
+        a closed form. ``model([x_0, ..., x_L])``: the energy of joint states, as :meth:`energy`."""
+        if isinstance(x, Tensor):
+            return self.free_energy(x)
+        return self.energy(x)
 
     def energy(self, states: Sequence[Tensor]) -> Tensor:
         """Energy ``(B,)`` of joint states (one ``(B, n_i)`` tensor per layer)."""

@@ -111,6 +111,7 @@ def pretrain(
                 progress=progress,
                 generator=generator,
                 pretrain_epochs=0,
+                stage=f"pretraining RBM {k + 1}/{last + 1}",
             )
         )
         stages.append(stage)

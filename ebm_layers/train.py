@@ -8,6 +8,7 @@ Everything here is reachable from a user's own loop: ``fit`` only builds a
 from __future__ import annotations
 
 import copy
+import logging
 import math
 import os
 import time
@@ -36,6 +37,8 @@ from .sampling import DataParticles, PersistentSampler
 from .tempering import ReplicaExchangeSampler
 
 __all__ = ["FitResult", "FitState", "default_optimizer", "fit", "load_checkpoint", "save_checkpoint"]
+
+logger = logging.getLogger(__name__)
 
 # fit's defaults, chosen by benchmarks/digits_rbm.py (see DEVELOPERS.md for the figures).
 DEFAULT_EPOCHS = 100
@@ -82,13 +85,14 @@ class FitState:
 class FitResult:
     """What :func:`fit` returns: the pieces it trained with and one record per epoch.
 
-    ``history[e]`` holds ``epoch`` (1-based), ``learning_rate``, ``statistics_gap`` (mean over the
-    epoch's batches of :attr:`Monitors.statistics_gap`), ``free_energy_gap`` (mean free energy of
-    the validation data minus that of as many training examples, see :func:`free_energy_gap`: the
-    mean-field free energy for a model without a closed form; ``None`` without validation data; it
-    grows when the model overfits), ``mean_field_iterations``
-    (mean over batches, ``None`` without mean field) and ``seconds``. ``pretraining`` holds the
-    history of each RBM of the greedy pretraining (bottom first; empty without pretraining).
+    ``history[e]`` holds ``stage`` (``fit``'s ``stage``: ``"training"`` by default), ``epoch``
+    (1-based), ``learning_rate``, ``statistics_gap`` (mean over the epoch's batches of
+    :attr:`Monitors.statistics_gap`), ``free_energy_gap`` (mean free energy of the validation data
+    minus that of as many training examples, see :func:`free_energy_gap`: the mean-field free
+    energy for a model without a closed form; ``None`` without validation data; it grows when the
+    model overfits), ``mean_field_iterations`` (mean over batches, ``None`` without mean field)
+    and ``seconds``. ``pretraining`` holds the history of each RBM of the greedy pretraining
+    (bottom first, stages ``"pretraining RBM k/L"``; empty without pretraining).
     """
 
     objective: TwoPhaseObjective
@@ -116,6 +120,7 @@ def fit(
     pretrain_epochs: int | None = None,
     distributed: bool = False,
     mixing_aid: str | None = None,
+    stage: str = "training",
 ) -> FitResult:
     """Train ``model`` on ``data`` for ``epochs`` passes with the two-phase learning rule.
 
@@ -124,11 +129,13 @@ def fit(
     the data phase; 100 persistent
     chains advanced one sweep per batch for the model phase; batches of 10; Adam at learning rate
     0.01 (0.001 for a deep model, three layers or more), decayed linearly towards zero over
-    ``epochs`` (see :func:`default_optimizer`). With tensor data, a fresh model's all-zero
-    visible biases are first set to the log-odds of the data's base rates
-    (:meth:`EnergyModel.init_visible_bias_from`), and a fresh deep chain (three layers or more,
-    as built by :func:`dbm`) is first pretrained greedily from RBMs (:func:`pretrain`,
-    ``DEFAULT_PRETRAIN_EPOCHS`` passes per RBM), then trained jointly for ``epochs`` passes.
+    ``epochs`` (see :func:`default_optimizer`). With tensor data, an untrained model's
+    (:meth:`EnergyModel.untrained`: every weight as built) all-zero visible biases are first set
+    to the log-odds of the data's base rates (:meth:`EnergyModel.init_visible_bias_from`), and an
+    untrained deep chain (three layers or more, as built by :func:`dbm`) is first pretrained
+    greedily from RBMs (:func:`pretrain`, ``DEFAULT_PRETRAIN_EPOCHS`` passes per RBM, with a
+    progress bar and history of their own, ``FitResult.pretraining``), then trained jointly for
+    ``epochs`` passes. A trained, loaded or already pretrained model is never pretrained again.
 
     Args:
         model: the :class:`EnergyModel`.
@@ -161,8 +168,8 @@ def fit(
         generator: the ``torch.Generator`` behind the default sampler, the shuffling and the
             pretraining.
         pretrain_epochs: passes over the data for each RBM of :func:`pretrain` before joint
-            training; ``0`` turns pretraining off. Default: ``DEFAULT_PRETRAIN_EPOCHS`` for a
-            fresh deep chain with tensor data, else none. Never when resuming (the checkpoint
+            training; ``0`` turns pretraining off. Default: ``DEFAULT_PRETRAIN_EPOCHS`` for an
+            untrained deep chain with tensor data, else none. Never when resuming (the checkpoint
             holds the pretrained and jointly trained model); an interrupted pretraining starts over.
         distributed: train data-parallel on the ranks of the initialised ``torch.distributed``
             process group (launch every rank with the same arguments, e.g. by ``torchrun``). The
@@ -178,6 +185,8 @@ def fit(
             ``"replica-exchange"`` (:class:`ReplicaExchangeSampler`, 10 temperatures towards the
             data's base rates) instead of plain persistent chains; see ``benchmarks/mixing.py``
             for what each did on the demo data.
+        stage: the name of this run in the progress bar and in every history record
+            (:func:`pretrain` names its RBMs ``"pretraining RBM k/L"``).
 
     Returns:
         a :class:`FitResult`. Raises ``FloatingPointError`` (the divergence guard of
@@ -255,11 +264,15 @@ def fit(
         if default_schedule and planned not in (None, epochs) and start < epochs:
             scheduler = result.scheduler = _continued_decay(optimizer, last_rates, start, epochs)
     elif pretrain_epochs:
+        logger.info(
+            "fit: pretraining the untrained chain %s greedily (%d RBMs x %d epochs) before %d joint epochs",
+            "-".join(map(str, model.sizes)), len(model.couplings), pretrain_epochs, epochs,
+        )  # fmt: skip
         stages = pretrain(
             model, data, epochs=pretrain_epochs, batch_size=batch_size, progress=progress, generator=generator
         )
         result.pretraining = [stage.history for stage in stages]
-    elif loader is None and _is_fresh(model):
+    elif loader is None and model.untrained() and not bool(model.layers[0].bias.detach().any()):
         model.init_visible_bias_from(data)
 
     shares = None  # with distributed tensor data: this rank's share of every epoch
@@ -276,7 +289,7 @@ def fit(
     try:
         with tqdm(total=total, unit="batch", disable=not progress or rank != 0, dynamic_ncols=True) as bar:
             for epoch in range(start, epochs):
-                bar.set_description(f"epoch {epoch + 1}/{epochs}")
+                bar.set_description(f"{stage}: epoch {epoch + 1}/{epochs}")
                 if not warned_zero_rate and all(group["lr"] == 0 for group in optimizer.param_groups):
                     warned_zero_rate = True
                     warnings.warn(
@@ -311,6 +324,7 @@ def fit(
                         return result  # stopped mid-epoch: no record, scheduler step or checkpoint for it
                 objective.check_parameters()
                 record = {
+                    "stage": stage,
                     "epoch": epoch + 1,
                     "learning_rate": optimizer.param_groups[0]["lr"],
                     "statistics_gap": sum(gaps) / max(1, len(gaps)),
@@ -517,7 +531,7 @@ def _pretrain_epochs(pretrain_epochs: int | None, model: EnergyModel, loader, re
     """Passes per RBM of the greedy pretraining this call runs (0: none)."""
     deep_chain = len(model.layers) > 2 and is_chain(len(model.layers), model.edges)
     if pretrain_epochs is None:
-        fresh = deep_chain and resume is None and _is_fresh(model)
+        fresh = deep_chain and resume is None and model.untrained()
         if fresh and loader is not None:
             warnings.warn(
                 "a fresh deep chain is trained from its random weights: greedy pretraining needs tensor "
@@ -535,10 +549,6 @@ def _pretrain_epochs(pretrain_epochs: int | None, model: EnergyModel, loader, re
     if pretrain_epochs and loader is not None:
         raise ValueError(f"pretrain_epochs={pretrain_epochs} needs tensor data, not a DataLoader")
     return 0 if resume is not None else pretrain_epochs
-
-
-def _is_fresh(model: EnergyModel) -> bool:
-    return not bool(model.layers[0].bias.detach().any())
 
 
 def _child_generator(generator: torch.Generator) -> torch.Generator:

@@ -410,3 +410,39 @@ def test_a_scheduler_that_ends_before_the_last_epoch_warns():
         warnings.simplefilter("error")
         optimizer, scheduler = el.default_optimizer(model, 4)
         el.fit(model, data, epochs=4, optimizer=optimizer, scheduler=scheduler, progress=False)
+
+
+def test_pretraining_never_overwrites_a_trained_model_and_shows_as_its_own_stage(capsys):
+    data = torch.bernoulli(torch.full((40, 6), 0.4), generator=torch.Generator().manual_seed(0))
+    trained = el.dbm(6, 4, 3, generator=torch.Generator().manual_seed(1))
+    with torch.no_grad():  # trained weights, visible biases still zero (the case fit used to re-pretrain)
+        for coupling in trained.couplings:
+            coupling.weight.normal_(0.0, 1.0, generator=torch.Generator().manual_seed(2))
+    loaded = el.dbm(6, 4, 3)
+    loaded.load_state_dict(trained.state_dict())
+    assert not loaded.untrained() and not bool(loaded.layers[0].bias.any())
+    result = el.fit(loaded, data, epochs=0, progress=False)
+    assert result.pretraining == []
+    assert all(torch.equal(a, b) for a, b in zip(loaded.state_dict().values(), trained.state_dict().values()))
+    # Negative control: an untrained chain (a dtype round trip keeps it so) is pretrained, and the
+    # progress output and the history show the stages.
+    fresh = el.dbm(6, 4, 3, generator=torch.Generator().manual_seed(3)).double().float()
+    assert fresh.untrained()
+    result = el.fit(fresh, data, epochs=1, pretrain_epochs=1, batch_size=10, progress=True)
+    assert not fresh.untrained()
+    assert [h[0]["stage"] for h in result.pretraining] == ["pretraining RBM 1/2", "pretraining RBM 2/2"]
+    assert result.history[0]["stage"] == "training"
+    shown = capsys.readouterr().err
+    assert "pretraining RBM 1/2: epoch 1/1" in shown and "training: epoch 1/1" in shown
+
+
+def test_calling_a_model_gives_its_free_energy_or_the_energy_of_states():
+    model = el.rbm(6, 4, generator=torch.Generator().manual_seed(0))
+    v = torch.bernoulli(torch.full((5, 6), 0.5), generator=torch.Generator().manual_seed(1))
+    h = torch.bernoulli(torch.full((5, 4), 0.5), generator=torch.Generator().manual_seed(2))
+    assert torch.equal(model(v), model.free_energy(v))
+    assert torch.equal(model([v, h]), model.energy([v, h]))
+    model(v).sum().backward()  # differentiable, like any module's output
+    assert model.couplings[0].weight.grad is not None
+    with pytest.raises(ValueError, match="no closed-form free energy"):
+        el.dbm(6, 4, 3)(v)
