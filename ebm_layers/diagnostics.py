@@ -261,7 +261,7 @@ def potential_scale_reduction(trace: Tensor) -> float:
 
 @torch.no_grad()
 def sampler_traces(
-    sampler: PersistentSampler, num_records: int, *, progress: bool = False
+    sampler: PersistentSampler, num_records: int, *, progress: bool = True
 ) -> dict[str, Tensor]:
     """Advance ``sampler`` ``num_records`` times (``sampler.sweeps`` sweeps each) and record scalar
     traces of every particle: ``"energy"``, ``"free_energy"`` (when the model has a closed form)
@@ -349,6 +349,7 @@ def mixing_during_learning(
     snapshots: int = 3,
     batch_size: int = 10,
     generator: torch.Generator | None = None,
+    progress: bool = True,
 ) -> list[dict]:
     """How much faster persistent particles switch modes while the weights learn than with the
     same weights frozen.
@@ -370,6 +371,7 @@ def mixing_during_learning(
         assign: rows to modes, as in :func:`mode_occupancy`.
         updates, snapshots, batch_size: as above.
         generator: the generator of the shuffling and of the frozen copies' chains.
+        progress: show a tqdm bar over the snapshots.
     """
     sampler = objective.negative
     if not isinstance(sampler, PersistentSampler):
@@ -381,7 +383,7 @@ def mixing_during_learning(
     batch_size = check_size("batch_size", batch_size)
     generator = resolve_generator(generator)
     records = []
-    for snapshot in range(snapshots):
+    for snapshot in tqdm(range(snapshots), desc="snapshots", unit="snapshot", disable=not progress):
         frozen = _frozen_copy(sampler, generator)
         learning_modes = [_modes("particles", sampler.particles[0], assign)]
         order = torch.randint(0, data.shape[0], (updates, batch_size), generator=generator)

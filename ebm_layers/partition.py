@@ -314,7 +314,7 @@ class _Terms:
 
 
 def _annealing(
-    model: EnergyModel, data, base: str, schedule, num_betas: int, generator: torch.Generator | None
+    model: EnergyModel, data, base: str | None, schedule, num_betas: int, generator: torch.Generator | None
 ) -> tuple[list[float], _AnnealingPath, torch.Generator]:
     """What a forward or reverse run needs: the betas, the path and the generator (all checked)."""
     betas = _check_schedule(schedule, num_betas).tolist()
@@ -339,6 +339,8 @@ def _summed_class(model: EnergyModel) -> tuple[int, ...]:
 def _base_biases(model: EnergyModel, data: Tensor | None, base: str) -> list[Tensor]:
     """Biases of the base model: visible log-odds of the data's base rates (or zero), hidden zero."""
     biases = [torch.zeros_like(b.detach()) for b in model.biases()]
+    if base is None:
+        base = "uniform" if data is None else "data"
     if base == "uniform":
         return biases
     if base != "data":
@@ -386,7 +388,7 @@ def ais_log_partition(
     num_chains: int = 100,
     num_betas: int = 10_000,
     data: Tensor | None = None,
-    base: str = "data",
+    base: str | None = None,
     schedule: str | Sequence[float] | Tensor | None = None,
     generator: torch.Generator | None = None,
     progress: bool = True,
@@ -407,7 +409,8 @@ def ais_log_partition(
         num_chains: number of annealing runs (importance weights).
         num_betas: number of intermediate distributions, both ends included (linear spacing).
         data: ``(N, n_0)`` training data for the base rates (``base="data"``).
-        base: ``"data"`` or ``"uniform"``.
+        base: ``"data"`` or ``"uniform"``; default ``"data"`` when ``data`` is given, else
+            ``"uniform"`` (an AIS without data works, usually with a wider bracket).
         schedule: ``"linear"`` (default), ``"piecewise"`` (see :func:`annealing_schedule`), or an
             explicit sequence of betas increasing strictly from 0 to 1 (then it sets the number
             of intermediate distributions and ``num_betas`` is not used).
@@ -446,7 +449,7 @@ def reverse_ais_log_likelihood(
     num_chains: int = 1,
     num_betas: int = 10_000,
     data: Tensor | None = None,
-    base: str = "data",
+    base: str | None = None,
     schedule: str | Sequence[float] | Tensor | None = None,
     generator: torch.Generator | None = None,
     progress: bool = True,

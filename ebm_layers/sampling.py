@@ -215,9 +215,12 @@ class PersistentSampler(nn.Module):
     ) -> list[Tensor]:
         """Draw ``num_samples`` joint states from the model with the persistent chains.
 
-        Runs ``burn_in`` sweeps, then records all ``P`` particles every ``thin`` sweeps until
-        ``num_samples`` states are collected (the chains are advanced and stay advanced).
-        Samples from one chain are correlated; raise ``thin`` to make them less so.
+        Runs ``burn_in`` sweeps (default 1,000: enough for the small models measured here, not a
+        guarantee; check with :func:`~ebm_layers.diagnostics.sampler_traces` and
+        :func:`~ebm_layers.diagnostics.potential_scale_reduction`), then records all ``P``
+        particles every ``thin`` sweeps (default 10) until ``num_samples`` states are collected
+        (the chains are advanced and stay advanced). Samples from one chain are correlated;
+        raise ``thin`` to make them less so. ``progress`` shows a tqdm bar, as everywhere.
 
         Returns:
             one ``(num_samples, n_i)`` tensor per layer, binary, detached.

@@ -6,6 +6,7 @@ from __future__ import annotations
 import torch
 from torch import Tensor
 
+from . import functional as F
 from ._checks import check_batch, check_size
 from .functional import base_rate_logits
 from .model import EnergyModel
@@ -32,8 +33,10 @@ class ReplicaExchangeSampler(PersistentSampler):
     Args:
         model: the :class:`EnergyModel`.
         num_particles: ``P``, the chains at ``beta = 1``.
-        num_replicas: ``K``, temperatures per particle (``K = 1`` is a plain persistent sampler).
         sweeps, generator, init: as in :class:`PersistentSampler`.
+        probabilities: as in :class:`PersistentSampler`: ``statistics()`` uses the conditional
+            probabilities of the last colour class given the rest of the ``beta = 1`` replica.
+        num_replicas: ``K``, temperatures per particle (``K = 1`` is a plain persistent sampler).
         data: ``(N, n_0)`` data for the base model's visible biases (default: zero biases).
         inverse_temperatures: ``K`` increasing values in ``(0, 1]`` ending at 1 (default: evenly
             spaced, ``1/K, 2/K, ..., 1``).
@@ -48,15 +51,16 @@ class ReplicaExchangeSampler(PersistentSampler):
         self,
         model: EnergyModel,
         num_particles: int = 100,
-        num_replicas: int = 10,
         sweeps: int = 1,
         generator: torch.Generator | None = None,
         init: str | Tensor = "uniform",
+        probabilities: bool = False,
         *,
+        num_replicas: int = 10,
         data: Tensor | None = None,
         inverse_temperatures: Tensor | None = None,
     ) -> None:
-        super().__init__(model, num_particles, sweeps, generator, init)
+        super().__init__(model, num_particles, sweeps, generator, init, probabilities)
         num_replicas = check_size("num_replicas", num_replicas)
         if inverse_temperatures is None:
             betas = torch.arange(1, num_replicas + 1, dtype=torch.float64) / num_replicas
@@ -120,7 +124,16 @@ class ReplicaExchangeSampler(PersistentSampler):
         for i in layers:
             setattr(self, f"hot_{i}", states[i][:hot])
         self._set_particles([x[hot:] for x in states])
-        return {}
+        if not keep_probabilities:
+            return {}
+        # After the swaps the beta = 1 replica is a draw of the model: its last class's conditional
+        # probabilities given the rest have the same expectation as its states (Rao-Blackwell).
+        schedule, particles = model.schedule, self.particles
+        return {
+            i: torch.sigmoid(F.layer_logits(particles, i, model.biases(), model.weights(), model.edges))
+            for i in schedule.classes[-1]
+            if i not in schedule.unitwise
+        }
 
     def _swap(self, states: list[Tensor]) -> None:
         """Metropolis swaps between neighbouring temperatures, in place on ``states``."""

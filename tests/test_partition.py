@@ -377,7 +377,7 @@ def _cases():
         ({"data": nan}, ValueError, "non-finite"),
         ({"data": data * 2}, ValueError, r"\[0, 1\]"),
         ({"base": "model", "data": data}, ValueError, "base must be"),
-        ({}, ValueError, "base='data' needs data"),
+        ({"base": "data"}, ValueError, "base='data' needs data"),
     ]
 
 
@@ -389,6 +389,19 @@ def test_bad_ais_arguments(case):
     with pytest.raises(error, match=message):
         ais_log_partition(model, progress=False, **options)
     assert_unchanged(model, before)
+
+
+def test_ais_without_data_starts_from_uniform_units():
+    # exact enumeration (mathematics) as the reference: AIS without data= works, from base="uniform".
+    model = randomize(build("rbm", (5, 3)), seed=0, scale=1.0)
+    estimate = ais_log_partition(
+        model, num_betas=500, progress=False, generator=torch.Generator().manual_seed(0)
+    )
+    same = ais_log_partition(
+        model, num_betas=500, base="uniform", progress=False, generator=torch.Generator().manual_seed(0)
+    )
+    assert estimate.log_z == same.log_z
+    assert abs(estimate.log_z - float(el.exact_log_partition(model).detach())) < 0.05
 
 
 def test_reverse_refuses_models_it_cannot_reverse():
