@@ -9,7 +9,7 @@ from dataclasses import dataclass, field
 import torch
 from torch import Tensor, nn
 
-from ._checks import check_model, check_real
+from ._checks import check_batch, check_model, check_real
 from .distributed import on_any_rank, rank_average
 from .enumeration import ExactStatistics
 from .inference import MeanField
@@ -63,10 +63,16 @@ class TwoPhaseObjective(nn.Module):
             optimizer such as Adam rescales bias and weight gradients separately, so the bias
             compensation no longer matches the weight step (on a 64-100-50 chain it made every
             hidden unit stick; see DEVELOPERS.md): use SGD with centering.
+            Sparsity is refused with centering (its term is written for the ordinary
+            parametrisation), and so is weight decay in :func:`~ebm_layers.train.fit`: an
+            optimizer decays the ordinary parameters, not the centered ones (a decay of ``W``
+            moves the centered biases); in your own loop, leave ``weight_decay`` at zero.
         offset_decay: the offsets ``c`` are running means, updated after every step towards the
             average of the data and model means (as the JMLR paper recommends):
             ``c <- offset_decay * c + (1 - offset_decay) * (data mean + model mean) / 2``;
             ``1.0`` keeps them fixed.
+        data: with ``centering``, training data ``(N, n_0)``: the visible offsets start at its
+            mean (:meth:`init_offsets`; ``fit`` does this with its own data when not given).
         max_weight: divergence guard. Before the statistics of a step are used, every parameter
             must be finite and every weight at most ``max_weight`` in magnitude, and the statistics
             and loss must be finite; otherwise ``FloatingPointError`` is raised before any gradient
@@ -80,7 +86,7 @@ class TwoPhaseObjective(nn.Module):
         last: the :class:`Monitors` of the latest call (``None`` before the first).
         sparsity_mean_<i>: buffer ``(n_i,)``, the running hidden means ``q`` (with ``sparsity_target``).
         offset_<i>: buffer ``(n_i,)`` of every layer, the centering offsets ``c`` (with
-            ``centering``), starting at 0.5.
+            ``centering``), starting at 0.5 (the visible ones at the data's mean when known).
 
     Examples::
 
@@ -108,6 +114,7 @@ class TwoPhaseObjective(nn.Module):
         sparsity_decay: float = 0.9,
         centering: bool = False,
         offset_decay: float = 0.99,
+        data: Tensor | None = None,
         max_weight: float = 1e4,
     ) -> None:
         super().__init__()
@@ -135,6 +142,15 @@ class TwoPhaseObjective(nn.Module):
             raise ValueError(f"sparsity_decay must lie in [0, 1), got {sparsity_decay}")
         if not isinstance(centering, bool):
             raise TypeError(f"centering must be True or False, got {centering!r}")
+        if centering and sparsity_target is not None:
+            raise ValueError(
+                f"sparsity_target={sparsity_target} with centering=True is not supported: the sparsity "
+                "term is written for the ordinary parametrisation; use one or the other"
+            )
+        if data is not None:
+            if not centering:
+                raise ValueError("data= sets the centering offsets; it needs centering=True")
+            data = check_batch("data", data, model.sizes[0], dtype=model.dtype)
         offset_decay = check_real("offset_decay", offset_decay)
         if not 0.0 <= offset_decay <= 1.0:
             raise ValueError(f"offset_decay must lie in [0, 1], got {offset_decay}")
@@ -152,6 +168,10 @@ class TwoPhaseObjective(nn.Module):
         if centering:
             for i, n in enumerate(model.sizes):
                 self.register_buffer(f"offset_{i}", torch.full((n,), 0.5, dtype=model.dtype))
+        # Whether the offsets are still the default start (fit then starts them from its data).
+        self.offsets_unset = centering and data is None
+        if data is not None:
+            self.init_offsets(data)
         if sparsity_target is not None:
             for i, n in enumerate(model.sizes[1:], start=1):
                 self.register_buffer(
@@ -198,6 +218,7 @@ class TwoPhaseObjective(nn.Module):
         with torch.no_grad():  # only now that the step is accepted
             for buffer, value in running:
                 buffer.copy_(value)
+        self.offsets_unset = False
         particles = getattr(self.negative, "particles", None)
         self.last = Monitors(
             difference=difference,
@@ -262,6 +283,16 @@ class TwoPhaseObjective(nn.Module):
             if a in deviation:
                 pairs[k] = pairs[k] - torch.outer(deviation[a], data.means[b])
         return Statistics(means, pairs), running
+
+    @torch.no_grad()
+    def init_offsets(self, data: Tensor) -> None:
+        """Start the visible offsets at the mean of ``data`` ``(N, n_0)`` (the hidden ones stay at
+        0.5), as "How to Center Deep Boltzmann Machines" (JMLR 2016) recommends."""
+        if not self.centering:
+            raise ValueError("init_offsets needs an objective built with centering=True")
+        data = check_batch("data", data, self.model.sizes[0], dtype=self.model.dtype)
+        self.offset_0.copy_(data.mean(0))
+        self.offsets_unset = False
 
     @property
     def offsets(self) -> list[Tensor]:

@@ -226,6 +226,13 @@ def fit(
         scheduler = default_scheduler if scheduler is None else scheduler
     elif not isinstance(optimizer, torch.optim.Optimizer):
         raise TypeError(f"optimizer must be a torch.optim.Optimizer, got {type(optimizer).__name__}")
+    decays = [group.get("weight_decay", 0.0) for group in optimizer.param_groups]
+    if objective.centering and any(decays):
+        raise ValueError(
+            f"weight_decay={max(decays)} with a centering objective: the optimizer decays the ordinary "
+            "parameters, not the centered ones the learning rule steps in; train centered models "
+            "without weight decay"
+        )
     if objective.centering and not isinstance(optimizer, torch.optim.SGD):
         warnings.warn(
             f"centering maps gradients, which is exact for SGD; {type(optimizer).__name__} rescales "
@@ -274,6 +281,8 @@ def fit(
         result.pretraining = [stage.history for stage in stages]
     elif loader is None and model.untrained() and not bool(model.layers[0].bias.detach().any()):
         model.init_visible_bias_from(data)
+    if resume is None and loader is None and objective.centering and objective.offsets_unset:
+        objective.init_offsets(data)
 
     shares = None  # with distributed tensor data: this rank's share of every epoch
     if distributed and loader is None:

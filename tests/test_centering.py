@@ -171,9 +171,7 @@ def test_offsets_are_running_means_of_data_and_model_means():
 
 def test_a_refused_step_leaves_the_offsets_alone():
     model = closed_form_models()["rbm"]
-    objective = el.TwoPhaseObjective(
-        model, el.MeanField(model), el.ExactStatistics(model), centering=True, sparsity_target=0.1
-    )
+    objective = el.TwoPhaseObjective(model, el.MeanField(model), el.ExactStatistics(model), centering=True)
     v = binary((7, 5), seed=2)
     v[0, 0] = float("nan")
     before = snapshot(objective)
@@ -194,6 +192,9 @@ def test_a_refused_step_leaves_the_offsets_alone():
         ({"centering": "yes"}, TypeError, "centering"),
         ({"centering": True, "offset_decay": 1.5}, ValueError, "offset_decay"),
         ({"centering": True, "offset_decay": -0.1}, ValueError, "offset_decay"),
+        ({"centering": True, "sparsity_target": 0.1}, ValueError, "sparsity_target=0.1 with centering"),
+        ({"data": torch.ones(2, 6)}, ValueError, "needs centering=True"),
+        ({"centering": True, "data": torch.ones(2, 5)}, ValueError, "6 columns"),
     ],
 )
 def test_bad_centering_arguments(options, error, message):
@@ -218,3 +219,38 @@ def test_fit_warns_when_centering_meets_an_adaptive_optimizer():
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         run(torch.optim.SGD(model.parameters(), lr=0.01, momentum=0.9))
+
+
+def test_visible_offsets_start_at_the_data_mean_when_data_is_known():
+    # "How to Center Deep Boltzmann Machines" (JMLR 2016): visible offsets from the data's mean,
+    # hidden ones at 0.5.
+    data = binary((20, 6), seed=3, dtype=torch.float32)
+    model = el.rbm(6, 3, generator=torch.Generator().manual_seed(0))
+    given = el.TwoPhaseObjective(model, centering=True, data=data)
+    torch.testing.assert_close(given.offset_0, data.mean(0))
+    assert bool((given.offset_1 == 0.5).all())
+    # fit starts an objective built without data from its own data, before the first step ...
+    objective = el.TwoPhaseObjective(model, centering=True, offset_decay=1.0)
+    assert bool((objective.offset_0 == 0.5).all())
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.01)
+    el.fit(model, data, objective=objective, optimizer=optimizer, epochs=1, progress=False)
+    torch.testing.assert_close(objective.offset_0, data.mean(0))  # offset_decay=1.0 kept them there
+    # ... but never restarts offsets that have been trained (negative control).
+    with torch.no_grad():
+        objective.offset_0.fill_(0.25)
+    el.fit(model, data, objective=objective, optimizer=optimizer, epochs=1, progress=False)
+    assert bool((objective.offset_0 == 0.25).all())
+
+
+def test_fit_refuses_weight_decay_on_the_weights_with_centering():
+    data = binary((20, 6), seed=3, dtype=torch.float32)
+    model = el.rbm(6, 3, generator=torch.Generator().manual_seed(0))
+    objective = el.TwoPhaseObjective(model, centering=True)
+    before = snapshot(objective)
+    decayed = torch.optim.SGD(el.weight_decay_groups(model, 1e-4), lr=0.01)
+    with pytest.raises(ValueError, match="weight_decay=0.0001 with a centering objective"):
+        el.fit(model, data, objective=objective, optimizer=decayed, epochs=1, progress=False)
+    assert_unchanged(objective, before)
+    # Negative control: the same optimizer without decay trains.
+    el.fit(model, data, objective=objective, optimizer=torch.optim.SGD(model.parameters(), lr=0.01), epochs=1,
+           progress=False)  # fmt: skip
