@@ -65,7 +65,8 @@ class MeanField(nn.Module):
         max_iter: most updates (sweeps, for colour) per call.
         backward: ``"implicit"`` or ``"unroll"``.
         init: value in [0, 1] of every free unit before the first update, or ``"bottom-up"``:
-            each free layer from the layers below it, in index order.
+            each free layer from the layers below it, in index order, with the weights from below
+            doubled for a layer that has couplings above it (as ``feedforward_network`` does).
 
     Shape:
         - ``mf(v, clamp, missing)``: ``v`` ``(B, n_0)``; ``clamp`` maps further layer indices to
@@ -175,6 +176,11 @@ class MeanField(nn.Module):
         for i in problem.free:
             if self.init == "bottom-up":
                 below = [(e, w) for e, w in zip(problem.edges, weights) if i in e and min(e) < i]
+                # Below the top, a layer also gets input from above: doubling the bottom-up weights
+                # stands in for it (the recognition pass of "Efficient Learning of Deep Boltzmann
+                # Machines", AISTATS 2010).
+                if any(i in e and max(e) > i for e in problem.edges):
+                    below = [(e, 2 * w) for e, w in below]
                 logits = F.layer_logits(marginals, i, biases, [w for _, w in below], [e for e, _ in below])
                 start = torch.sigmoid(logits).expand(problem.batch, -1)
             else:

@@ -404,11 +404,18 @@ def test_bottom_up_initialisation():
     with pytest.warns(RuntimeWarning, match="did not converge"), torch.no_grad():
         marginals = mf(v)
     (b1, b2), (w01, w12) = [layer.bias for layer in model.layers[1:]], model.weights()
-    # The bottom-up pass, then one half-damped parallel update from it (mathematics).
-    mu1 = torch.sigmoid(b1 + v @ w01)
+    # The bottom-up pass with doubled weights below the top (the recognition pass of "Efficient
+    # Learning of Deep Boltzmann Machines", AISTATS 2010), then one half-damped parallel update.
+    mu1 = torch.sigmoid(b1 + v @ (2 * w01))
     mu2 = torch.sigmoid(b2 + mu1 @ w12)
     torch.testing.assert_close(marginals[1], 0.5 * mu1 + 0.5 * torch.sigmoid(b1 + v @ w01 + mu2 @ w12.T))
     torch.testing.assert_close(marginals[2], 0.5 * mu2 + 0.5 * torch.sigmoid(b2 + mu1 @ w12))
+    # The same pass as feedforward_network's (an invariant) ...
+    network = el.feedforward_network(model, layers=[1, 2])
+    torch.testing.assert_close(torch.cat([mu1, mu2], 1), network(v))
+    # ... and not the plain one (negative control: the undoubled pass gives other marginals).
+    plain1 = torch.sigmoid(b1 + v @ w01)
+    assert not torch.allclose(marginals[1], 0.5 * plain1 + 0.5 * torch.sigmoid(b1 + v @ w01 + mu2 @ w12.T))
 
 
 def test_statistics_are_the_pair_averages_of_the_marginals():
