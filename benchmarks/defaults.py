@@ -250,6 +250,26 @@ def exact_reference(data: DataSet, seed: int, steps: int, rate: float) -> float:
     return test_log_likelihood(model, data)
 
 
+def timing(sizes: list[tuple[int, int]], rows: int, epochs: int) -> None:
+    """Seconds per epoch of plain chains and of the rule's sampler on random data, interleaved."""
+    print(f"\ncost of the rule's sampler against plain chains: {rows} random rows, {epochs} epochs, batch 10")
+    print(f"{'RBM':>9} {'plain s/epoch':>14} {'rule s/epoch':>13} {'ratio':>6}")
+    data_generator = torch.Generator().manual_seed(DATA_SEED)
+    for n_v, n_h in sizes:
+        train = torch.bernoulli(torch.full((rows, n_v), 0.3), generator=data_generator)
+        times = {"plain": [], recommended(el.rbm(n_v, n_h))[0]: []}
+        for _ in range(3):  # interleaved, so a change of machine load hits both
+            for phase in times:
+                g = torch.Generator().manual_seed(0)
+                model = el.rbm(n_v, n_h, generator=g)
+                negative = PHASES[phase][1](model, g, train)
+                objective = el.TwoPhaseObjective(model, el.MeanField(model, init="bottom-up"), negative)
+                result = el.fit(model, train, epochs=epochs, objective=objective, progress=False, generator=g)
+                times[phase].append(statistics.median(record["seconds"] for record in result.history))
+        plain, rule = (statistics.median(t) for t in times.values())
+        print(f"{f'{n_v}-{n_h}':>9} {plain:>14.3f} {rule:>13.3f} {rule / plain:>6.2f}", flush=True)
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(
         description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter
@@ -263,8 +283,15 @@ def main() -> None:
     parser.add_argument("--reference-rates", type=float, nargs="*", default=[0.01, 0.03])
     parser.add_argument("--train-size", type=int, default=None, help="training rows of the generated sets")
     parser.add_argument("--tiny", action="store_true", help="smoke test: tiny training sets")
+    parser.add_argument(
+        "--timing", action="store_true", help="only the rule's cost against plain chains at larger sizes"
+    )
     args = parser.parse_args()
     torch.set_num_threads(1)  # the runs are small: one thread is fastest and repeatable
+    if args.timing:
+        sizes = [(16, 16), (32, 100)] if args.tiny else [(16, 16), (32, 100), (32, 500), (32, 1000)]
+        timing(sizes, 100 if args.tiny else 1000, 1 if args.tiny else 2)
+        return
     began = time.perf_counter()
     print(f"torch {torch.__version__}, {torch.get_num_threads()} thread; {args.epochs} epochs, batch 10")
     for name in args.datasets:
