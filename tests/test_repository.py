@@ -157,7 +157,7 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
         ),
         (
             "defaults.py",
-            "--tiny --epochs 1 --seeds 0 --rates 0.03 --phases plain re4 --reference-steps 2".split(),
+            "--tiny --epochs 1 --seeds 0 --rates 0.03 --phases plain re2s2 --reference-steps 2".split(),
             "best:",
         ),
         (
