@@ -213,6 +213,7 @@ PHASES: dict[str, tuple[str, Phase]] = {
 # rate and replica exchange with one hotter copy and two sweeps per step, which keeps the chains moving
 # between modes at that rate; from SMALL_VISIBLE + 1 units on, fit's present default. Measured by this
 # script (16-20 visible units) and benchmarks/digits_rbm.py (64 units); 32 is a guess between the two.
+# In fit the rule also needs at most 100 hidden units: beyond, it costs over 2x plain chains (--timing).
 SMALL_VISIBLE, SMALL_RATE = 32, 0.03
 
 
