@@ -158,6 +158,11 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
             "fit defaults: median",
         ),
         (
+            "defaults.py",
+            "--tiny --epochs 1 --seeds 0 --rates 0.03 --phases plain re2s2 --reference-steps 2".split(),
+            "best:",
+        ),
+        (
             "sweep.py",
             "--sizes 20 10 5 --particles 10 --repeats 2".split(),
             "unit updates/s",

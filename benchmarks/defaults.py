@@ -1,0 +1,364 @@
+"""fit's negative phase and rate against the alternatives, on small binary data sets with exact
+likelihood.
+
+For every data set, negative phase and Adam starting rate (decayed linearly to zero, as ``fit``
+does), an RBM is trained by ``fit`` for ``--epochs`` passes (batch 10, mean field for the data
+phase, base-rate visible biases) from each of ``--seeds``, and the exact test log-likelihood (nats
+per example; median, worst and every seed) and the seconds per epoch are printed. The generated
+sets are tested on their true distribution (every state with its probability: an infinite test
+set); the digits on a held-out split. Per data set also: the exact full-batch gradient for
+``--reference-steps`` steps (where the optimum lies), the rule proposed as fit's default (row
+``rule:``, see ``recommended``), the best configuration and the rule's gap to it. ``--timing``
+instead compares the rule's cost with plain chains' at larger sizes.
+
+    python benchmarks/defaults.py [--datasets ...] [--phases ...] [--rates 0.01 0.03] [--seeds 0 1 2]
+                                  [--epochs 50] [--reference-steps 2000] [--tiny] [--timing]
+
+About 35 minutes with the defaults on 2 shared cores (the exact phase of the 16-16 RBM is most of
+it); ``--rates 0.001 0.003`` adds the lower rates. ``--tiny`` shrinks every data set for a smoke test.
+"""
+
+from __future__ import annotations
+
+import argparse
+import itertools
+import math
+import statistics
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+from sklearn.datasets import load_digits
+from sklearn.model_selection import train_test_split
+
+import ebm_layers as el
+from ebm_layers.statistics import Statistics
+
+DATA_SEED = 1234  # every data set is drawn from this seed; --seeds vary the model and the training only
+
+
+@dataclass
+class DataSet:
+    """Training rows, and the test distribution as weighted states (weights summing to one)."""
+
+    name: str
+    train: torch.Tensor
+    test_states: torch.Tensor
+    test_weights: torch.Tensor
+    hidden: int
+    source: str
+    entropy: float | None = None  # of the true distribution, when known: the best test value is -entropy
+
+
+def all_states(bits: int) -> torch.Tensor:
+    """Every binary vector of ``bits`` units, ``(2^bits, bits)``, unit 0 the lowest bit."""
+    return ((torch.arange(2**bits)[:, None] >> torch.arange(bits)) & 1).float()
+
+
+def from_distribution(
+    name: str, states: torch.Tensor, probabilities: torch.Tensor, size: int, hidden: int, source: str
+) -> DataSet:
+    """Training rows drawn from an enumerated distribution; the test is the distribution itself
+    (the limit of an infinite test set), so it carries no test-sampling noise."""
+    g = torch.Generator().manual_seed(DATA_SEED)
+    rows = torch.multinomial(probabilities.double(), size, replacement=True, generator=g)
+    keep = probabilities > 0
+    p = probabilities[keep].double()
+    entropy = float(-(p * p.log()).sum())
+    return DataSet(name, states[rows], states[keep], p / p.sum(), hidden, source, entropy)
+
+
+def bars_and_stripes(size: int) -> DataSet:
+    """4x4 bars and stripes: an orientation, then every row (or column) on with probability 1/2.
+    30 distinct images, all-off and all-on twice as likely as the rest; most pairs of images
+    differ in 4 pixels or more, with near zero probability between them: strongly multimodal."""
+    lines = all_states(4)
+    images = torch.cat([lines[:, :, None].expand(16, 4, 4), lines[:, None, :].expand(16, 4, 4)])
+    images = images.reshape(32, 16)
+    states, counts = torch.unique(images, dim=0, return_counts=True)
+    return from_distribution(
+        "bars-stripes", states, counts.double() / 32, size, 16,
+        '"Information Theory, Inference, and Learning Algorithms", Cambridge University Press, 2003',
+    )  # fmt: skip
+
+
+def prototypes(size: int, bits: int = 20, count: int = 8, flip: float = 0.05) -> DataSet:
+    """A mixture of ``count`` random prototypes (fair bits) with independent flip noise: prototypes
+    lie about ``bits / 2`` flips apart and an example about ``bits * flip`` from its own, so the
+    modes are separated by regions of almost no mass: strongly multimodal."""
+    g = torch.Generator().manual_seed(DATA_SEED + 1)
+    centres = torch.bernoulli(torch.full((count, bits), 0.5), generator=g).double()
+    states = all_states(bits).double()
+    distance = states @ (1 - centres).T + (1 - states) @ centres.T  # (2^bits, count)
+    log_p = distance * math.log(flip) + (bits - distance) * math.log1p(-flip)
+    probabilities = torch.logsumexp(log_p, 1).exp() / count
+    return from_distribution(
+        "prototypes", states.float(), probabilities, size, 12, "generated here (common practice, no source)"
+    )
+
+
+def shifter(size: int, width: int = 8, rate: float = 0.3) -> DataSet:
+    """The labelled shifter ensemble: a pattern of ``width`` bits (each on with probability
+    ``rate``), its copy shifted cyclically by -1, 0 or +1, and the shift as a one-hot label of 3
+    units. Three label modes, and third-order structure between the two patterns."""
+    patterns = all_states(width)
+    on = patterns.sum(1)
+    p_pattern = rate**on * (1 - rate) ** (width - on)
+    states = torch.cat(
+        [torch.cat([patterns, patterns.roll(s, 1), torch.eye(3)[k].expand(len(patterns), 3)], 1)
+         for k, s in enumerate((-1, 0, 1))]
+    )  # fmt: skip
+    return from_distribution(
+        "shifter", states, p_pattern.repeat(3) / 3, size, 12,
+        '"A Learning Algorithm for Boltzmann Machines", Cognitive Science, 1985',
+    )  # fmt: skip
+
+
+def digits(pooled: bool, tiny: bool) -> DataSet:
+    """scikit-learn's bundled 8x8 digits with the 70/30 split of ``benchmarks/digits_rbm.py``:
+    pooled to 4x4 (mean of each 2x2 block, of 0-16) and binarised at >= 6, with 12 hidden units;
+    or as in that script (binarised at >= 8, 16 hidden units). Ten classes: moderately multimodal."""
+    x, y = load_digits(return_X_y=True)
+    if pooled:
+        x = x.reshape(-1, 4, 2, 4, 2).mean((2, 4)).reshape(-1, 16)
+    binary = (x >= (6 if pooled else 8)).astype(np.float32)
+    train, test = (
+        torch.from_numpy(part)
+        for part in train_test_split(binary, test_size=0.3, random_state=0, stratify=y)[:2]
+    )
+    train, test = (train[:50], test[:20]) if tiny else (train, test)
+    source = "scikit-learn's bundled 8x8 digits (sklearn.datasets.load_digits)"
+    return DataSet(
+        "digits-4x4" if pooled else "digits-8x8", train, test, torch.full((len(test),), 1.0 / len(test)),
+        12 if pooled else 16, source + (", pooled 2x2" if pooled else ""),
+    )  # fmt: skip
+
+
+@torch.no_grad()
+def test_log_likelihood(model: el.EnergyModel, data: DataSet) -> float:
+    """Exact expected log-likelihood of the test distribution, nats per example (float64)."""
+    return float((data.test_weights * el.exact_log_likelihood(model, data.test_states)).sum())
+
+
+class EnumeratedStatistics(el.ExactStatistics):
+    """``ExactStatistics`` by the same enumeration of the smaller layer, held as one matrix and done
+    in float32 with a log-sum-exp (a speed-up of this script, not of the library: about 3x at
+    2^16 states; float64 results agree to about 1e-6)."""
+
+    def __init__(self, model: el.EnergyModel) -> None:
+        super().__init__(model)
+        self.side = 1 if model.sizes[1] <= model.sizes[0] else 0
+        self.states = all_states(model.sizes[self.side])
+
+    @torch.no_grad()
+    def statistics(self) -> Statistics:
+        biases = [b.detach() for b in self.model.biases()]
+        weight = self.model.weights()[0].detach()
+        weight = weight if self.side == 1 else weight.T  # (other side, enumerated side)
+        logits = biases[1 - self.side] + self.states @ weight.T
+        log_weights = self.states @ biases[self.side] + torch.nn.functional.softplus(logits).sum(1)
+        p = torch.softmax(log_weights, 0)
+        q = torch.sigmoid(logits)
+        enumerated, other, pairs = p @ self.states, p @ q, (q * p[:, None]).T @ self.states
+        if self.side == 1:
+            return Statistics([other, enumerated], [pairs])
+        return Statistics([enumerated, other], [pairs.T])
+
+
+Phase = Callable[[el.EnergyModel, torch.Generator, torch.Tensor], torch.nn.Module]
+
+PHASES: dict[str, tuple[str, Phase]] = {
+    "plain": (
+        "persistent, 100 chains x 1 sweep (fit's default)",
+        lambda m, g, x: el.PersistentSampler(m, 100, 1, generator=g),
+    ),
+    "sweeps2": (
+        "persistent, 100 chains x 2 sweeps",
+        lambda m, g, x: el.PersistentSampler(m, 100, 2, generator=g),
+    ),
+    "sweeps5": (
+        "persistent, 100 chains x 5 sweeps",
+        lambda m, g, x: el.PersistentSampler(m, 100, 5, generator=g),
+    ),
+    "re10": (
+        "replica exchange, 100 x 10 temperatures (fit's aid)",
+        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 10, 1, generator=g, data=x),
+    ),
+    "re4": (
+        "replica exchange, 100 x 4 temperatures",
+        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 4, 1, generator=g, data=x),
+    ),
+    "re2": (
+        "replica exchange, 100 x 2 temperatures",
+        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 2, 1, generator=g, data=x),
+    ),
+    "re4s2": (
+        "replica exchange, 100 x 4 temperatures, 2 sweeps",
+        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 4, 2, generator=g, data=x),
+    ),
+    "re2s2": (
+        "replica exchange, 100 x 2 temperatures, 2 sweeps",
+        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 2, 2, generator=g, data=x),
+    ),
+    "fast": (
+        "fast weights, 100 x 1 (fit's aid; fast rate 0.01)*",
+        lambda m, g, x: el.FastWeightsSampler(m, 100, 1, generator=g, fast_learning_rate=0.01),
+    ),
+    "exact": ("exact model statistics (enumeration)", lambda m, g, x: EnumeratedStatistics(m)),
+}
+
+# The rule measured here as a default (see benchmarks/README.md): a small visible layer gets a higher
+# rate and replica exchange with one hotter copy and two sweeps per step, which keeps the chains moving
+# between modes at that rate; from SMALL_VISIBLE + 1 units on, fit's present default. Measured by this
+# script (16-20 visible units) and benchmarks/digits_rbm.py (64 units); 32 is a guess between the two.
+# In fit the rule also needs at most 100 hidden units: beyond, it costs over 2x plain chains (--timing).
+SMALL_VISIBLE, SMALL_RATE = 32, 0.03
+
+
+def recommended(model: el.EnergyModel) -> tuple[str, float]:
+    """The rule's negative phase (a key of PHASES) and starting rate for ``model``."""
+    return ("re2s2", SMALL_RATE) if model.sizes[0] <= SMALL_VISIBLE else ("plain", 0.01)
+
+
+def recommended_phase(data: DataSet) -> str:
+    return recommended(el.rbm(data.train.shape[1], data.hidden))[0]
+
+
+def train_once(data: DataSet, phase: str | None, rate: float | None, seed: int, epochs: int) -> tuple:
+    """Train a fresh RBM with ``fit`` (``phase`` None: the rule's phase and rate); return the test
+    log-likelihood, the seconds per epoch and the rate used."""
+    g = torch.Generator().manual_seed(seed)
+    model = el.rbm(data.train.shape[1], data.hidden, generator=g)
+    if phase is None:
+        phase, rate = recommended(model)
+    negative = PHASES[phase][1](model, g, data.train)
+    objective = el.TwoPhaseObjective(model, el.MeanField(model, init="bottom-up"), negative)
+    optimizer, scheduler = el.default_optimizer(model, epochs, rate)
+    result = el.fit(
+        model, data.train, epochs=epochs, objective=objective, optimizer=optimizer,
+        scheduler=scheduler, progress=False, generator=g,
+    )  # fmt: skip
+    seconds = statistics.mean(record["seconds"] for record in result.history)
+    return test_log_likelihood(model, data), seconds, rate
+
+
+def exact_reference(data: DataSet, seed: int, steps: int, rate: float) -> float:
+    """Full-batch Adam on the exact gradient, ``steps`` steps at ``rate`` decayed linearly to zero,
+    from fit's start (same initial weights, base-rate visible biases)."""
+    g = torch.Generator().manual_seed(seed)
+    model = el.rbm(data.train.shape[1], data.hidden, generator=g)
+    model.init_visible_bias_from(data.train)
+    objective = el.TwoPhaseObjective(model, el.MeanField(model), EnumeratedStatistics(model))
+    optimizer, scheduler = el.default_optimizer(model, steps, rate)
+    for _ in range(steps):
+        optimizer.zero_grad()
+        objective(data.train).backward()
+        optimizer.step()
+        scheduler.step()
+    return test_log_likelihood(model, data)
+
+
+def timing(sizes: list[tuple[int, int]], rows: int, epochs: int) -> None:
+    """Seconds per epoch of plain chains and of the rule's sampler on random data, interleaved."""
+    print(f"\ncost of the rule's sampler against plain chains: {rows} random rows, {epochs} epochs, batch 10")
+    print(f"{'RBM':>9} {'plain s/epoch':>14} {'rule s/epoch':>13} {'ratio':>6}")
+    data_generator = torch.Generator().manual_seed(DATA_SEED)
+    for n_v, n_h in sizes:
+        train = torch.bernoulli(torch.full((rows, n_v), 0.3), generator=data_generator)
+        times = {"plain": [], recommended(el.rbm(n_v, n_h))[0]: []}
+        for _ in range(3):  # interleaved, so a change of machine load hits both
+            for phase in times:
+                g = torch.Generator().manual_seed(0)
+                model = el.rbm(n_v, n_h, generator=g)
+                negative = PHASES[phase][1](model, g, train)
+                objective = el.TwoPhaseObjective(model, el.MeanField(model, init="bottom-up"), negative)
+                result = el.fit(model, train, epochs=epochs, objective=objective, progress=False, generator=g)
+                times[phase].append(statistics.median(record["seconds"] for record in result.history))
+        plain, rule = (statistics.median(t) for t in times.values())
+        print(f"{f'{n_v}-{n_h}':>9} {plain:>14.3f} {rule:>13.3f} {rule / plain:>6.2f}", flush=True)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(
+        description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter
+    )
+    parser.add_argument("--datasets", nargs="+", default=list(DATASETS), choices=[*DATASETS, *EXTRA_DATASETS])
+    parser.add_argument(
+        "--phases", nargs="+", default=["plain", "sweeps5", "re10", "re4", "re2s2", "fast", "exact"],
+        choices=list(PHASES),
+    )  # fmt: skip
+    parser.add_argument("--rates", type=float, nargs="+", default=[0.01, 0.03])
+    parser.add_argument("--seeds", type=int, nargs="+", default=[0, 1, 2])
+    parser.add_argument("--epochs", type=int, default=50)
+    parser.add_argument("--reference-steps", type=int, default=2000)
+    parser.add_argument("--reference-rates", type=float, nargs="*", default=[0.01, 0.03])
+    parser.add_argument("--train-size", type=int, default=None, help="training rows of the generated sets")
+    parser.add_argument("--tiny", action="store_true", help="smoke test: tiny training sets")
+    parser.add_argument(
+        "--timing", action="store_true", help="only the rule's cost against plain chains at larger sizes"
+    )
+    args = parser.parse_args()
+    torch.set_num_threads(1)  # the runs are small: one thread is fastest and repeatable
+    if args.timing:
+        sizes = [(16, 16), (32, 100)] if args.tiny else [(16, 16), (32, 100), (32, 500), (32, 1000)]
+        timing(sizes, 100 if args.tiny else 1000, 1 if args.tiny else 2)
+        return
+    began = time.perf_counter()
+    print(f"torch {torch.__version__}, {torch.get_num_threads()} thread; {args.epochs} epochs, batch 10")
+    for name in args.datasets:
+        data = {**DATASETS, **EXTRA_DATASETS}[name](args.tiny, args.train_size)
+        n_v = data.train.shape[1]
+        print(
+            f"\n{data.name}: RBM {n_v}-{data.hidden}, {len(data.train)} training rows, "
+            f"test {len(data.test_states)} weighted states; source: {data.source}"
+        )
+        if data.entropy is not None:
+            print(
+                f"entropy of the true distribution {data.entropy:.3f}: "
+                f"no model scores above {-data.entropy:.3f}"
+            )
+        for rate in args.reference_rates:
+            values = [exact_reference(data, seed, args.reference_steps, rate) for seed in args.seeds]
+            print(
+                f"reference: exact full-batch gradient, {args.reference_steps} steps, Adam {rate}: "
+                f"median {statistics.median(values):.3f} (seeds {' '.join(f'{v:.3f}' for v in values)})",
+                flush=True,
+            )
+        print(f"{'negative phase':<52} {'rate':>6} {'median':>8} {'worst':>8} {'s/epoch':>8}  seeds")
+        rows = {}
+        for phase, rate in itertools.product([*args.phases, None], args.rates):
+            if phase is None and rows.get(None):
+                continue  # the rule chooses its own rate: one row
+            runs = [train_once(data, phase, rate, seed, args.epochs) for seed in args.seeds]
+            values = [v for v, _, _ in runs]
+            seconds = statistics.median(s for _, s, _ in runs)
+            rows[phase] = rows.get(phase, []) + [(statistics.median(values), runs[0][2], seconds)]
+            label = PHASES[phase][0] if phase else f"rule: {PHASES[recommended_phase(data)][0]}"
+            print(
+                f"{label:<52} {runs[0][2]:>6g} {rows[phase][-1][0]:>8.3f} {min(values):>8.3f} "
+                f"{seconds:>8.3f}  {' '.join(f'{v:.3f}' for v in values)}",
+                flush=True,
+            )
+        best = max((value, phase, rate) for phase, row in rows.items() if phase for value, rate, _ in row)
+        rule, plain = rows[None][0], [seconds for *_, seconds in rows.get("plain", [])]
+        cost = f", {rule[2] / statistics.median(plain):.2f}x plain chains' s/epoch" if plain else ""
+        print(
+            f"best: {PHASES[best[1]][0]} at {best[2]:g}, {best[0]:.3f}; rule {rule[0]:.3f}, "
+            f"gap {best[0] - rule[0]:.3f} nats (target <= 0.1){cost}"
+        )
+    print(f"\ntook {time.perf_counter() - began:.0f} s")
+
+
+DATASETS: dict[str, Callable[[bool], DataSet]] = {
+    "bars-stripes": lambda tiny, size: bars_and_stripes(50 if tiny else size or 1000),
+    "prototypes": lambda tiny, size: prototypes(50 if tiny else size or 1000),
+    "shifter": lambda tiny, size: shifter(50 if tiny else size or 1000),
+    "digits-4x4": lambda tiny, size: digits(True, tiny),
+}
+# Not in the default list: the data of benchmarks/digits_rbm.py, for its target (run with --epochs 100).
+EXTRA_DATASETS = {"digits-8x8": lambda tiny, size: digits(False, tiny)}
+
+if __name__ == "__main__":
+    main()
