@@ -184,27 +184,27 @@ PHASES: dict[str, tuple[str, Phase]] = {
     ),
     "re10": (
         "replica exchange, 100 x 10 temperatures (fit's aid)",
-        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 10, 1, generator=g, data=x),
+        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 1, generator=g, num_replicas=10, data=x),
     ),
     "re4": (
         "replica exchange, 100 x 4 temperatures",
-        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 4, 1, generator=g, data=x),
+        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 1, generator=g, num_replicas=4, data=x),
     ),
     "re2": (
         "replica exchange, 100 x 2 temperatures",
-        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 2, 1, generator=g, data=x),
+        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 1, generator=g, num_replicas=2, data=x),
     ),
     "re4s2": (
         "replica exchange, 100 x 4 temperatures, 2 sweeps",
-        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 4, 2, generator=g, data=x),
+        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 2, generator=g, num_replicas=4, data=x),
     ),
     "re2s2": (
         "replica exchange, 100 x 2 temperatures, 2 sweeps",
-        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 2, 2, generator=g, data=x),
+        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 2, generator=g, num_replicas=2, data=x),
     ),
     "fast": (
-        "fast weights, 100 x 1 (fit's aid; fast rate 0.01)*",
-        lambda m, g, x: el.FastWeightsSampler(m, 100, 1, generator=g, fast_learning_rate=0.01),
+        "fast weights, 100 x 1 (fit's aid: the optimizer's steps, decay 0.95)",
+        lambda m, g, x: el.FastWeightsSampler(m, 100, 1, generator=g),
     ),
     "exact": ("exact model statistics (enumeration)", lambda m, g, x: EnumeratedStatistics(m)),
 }
