@@ -169,39 +169,30 @@ class EnumeratedStatistics(el.ExactStatistics):
 
 Phase = Callable[[el.EnergyModel, torch.Generator, torch.Tensor], torch.nn.Module]
 
+
+def persistent(sweeps: int, note: str = "") -> tuple[str, Phase]:
+    """Plain persistent chains, 100 particles, ``sweeps`` sweeps per step."""
+    label = f"persistent, 100 chains x {sweeps} sweep{'s' * (sweeps > 1)}{note}"
+    return label, lambda m, g, x: el.PersistentSampler(m, 100, sweeps, generator=g)
+
+
+def replica_exchange(replicas: int, sweeps: int = 1, note: str = "") -> tuple[str, Phase]:
+    """Replica exchange towards the data's base rates, 100 particles at beta = 1."""
+    label = f"replica exchange, 100 x {replicas} temperatures{f', {sweeps} sweeps' * (sweeps > 1)}{note}"
+    return label, lambda m, g, x: el.ReplicaExchangeSampler(
+        m, 100, sweeps, generator=g, num_replicas=replicas, data=x
+    )
+
+
 PHASES: dict[str, tuple[str, Phase]] = {
-    "plain": (
-        "persistent, 100 chains x 1 sweep (fit's default)",
-        lambda m, g, x: el.PersistentSampler(m, 100, 1, generator=g),
-    ),
-    "sweeps2": (
-        "persistent, 100 chains x 2 sweeps",
-        lambda m, g, x: el.PersistentSampler(m, 100, 2, generator=g),
-    ),
-    "sweeps5": (
-        "persistent, 100 chains x 5 sweeps",
-        lambda m, g, x: el.PersistentSampler(m, 100, 5, generator=g),
-    ),
-    "re10": (
-        "replica exchange, 100 x 10 temperatures (fit's aid)",
-        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 1, generator=g, num_replicas=10, data=x),
-    ),
-    "re4": (
-        "replica exchange, 100 x 4 temperatures",
-        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 1, generator=g, num_replicas=4, data=x),
-    ),
-    "re2": (
-        "replica exchange, 100 x 2 temperatures",
-        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 1, generator=g, num_replicas=2, data=x),
-    ),
-    "re4s2": (
-        "replica exchange, 100 x 4 temperatures, 2 sweeps",
-        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 2, generator=g, num_replicas=4, data=x),
-    ),
-    "re2s2": (
-        "replica exchange, 100 x 2 temperatures, 2 sweeps",
-        lambda m, g, x: el.ReplicaExchangeSampler(m, 100, 2, generator=g, num_replicas=2, data=x),
-    ),
+    "plain": persistent(1, " (fit's default)"),
+    "sweeps2": persistent(2),
+    "sweeps5": persistent(5),
+    "re10": replica_exchange(10, note=" (fit's aid)"),
+    "re4": replica_exchange(4),
+    "re2": replica_exchange(2),
+    "re4s2": replica_exchange(4, 2),
+    "re2s2": replica_exchange(2, 2),
     "fast": (
         "fast weights, 100 x 1 (fit's aid: the optimizer's steps, decay 0.95)",
         lambda m, g, x: el.FastWeightsSampler(m, 100, 1, generator=g),

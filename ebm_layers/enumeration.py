@@ -40,6 +40,13 @@ def enumeration_cover(model: EnergyModel, max_states: int = MAX_STATES) -> tuple
     return cover
 
 
+def binary_codes(start: int, stop: int, bits: int, dtype: torch.dtype = torch.float64, device=None) -> Tensor:
+    """Rows ``start..stop`` of the list of every binary vector of ``bits`` units ``(stop - start, bits)``:
+    row ``r`` holds the bits of ``r``, unit 0 the lowest."""
+    codes = torch.arange(start, stop, device=device)
+    return ((codes[:, None] >> torch.arange(bits, device=device)) & 1).to(dtype)
+
+
 @torch.no_grad()
 def exact_moments(
     model: EnergyModel, *, statistics: bool = True, max_states: int = MAX_STATES
@@ -56,15 +63,13 @@ def exact_moments(
     summed_out = [i for i in range(len(biases)) if i not in cover]
     bits, total = sum(cover_sizes), 2 ** sum(cover_sizes)
     rows = max(1, min(total, _CHUNK_ELEMENTS // sum(model.sizes)))
-    shifts = torch.arange(bits, device=device)
 
     log_scale = torch.tensor(-math.inf, dtype=torch.float64, device=device)
     weight_sum = torch.zeros((), dtype=torch.float64, device=device)
     means = [torch.zeros_like(b) for b in biases]
     pairs = [torch.zeros_like(w) for w in weights]
     for start in range(0, total, rows):
-        codes = torch.arange(start, min(start + rows, total), device=device)
-        cover_bits = ((codes[:, None] >> shifts) & 1).to(torch.float64)
+        cover_bits = binary_codes(start, min(start + rows, total), bits, device=device)
         given = dict(zip(cover, cover_bits.split(cover_sizes, dim=1)))
         summed_logits = {k: F.layer_logits(given, k, biases, weights, model.edges) for k in summed_out}
         log_weights = -F.marginal_free_energy(given, biases, weights, model.edges, summed_logits)

@@ -90,9 +90,10 @@ class FastWeightsSampler(PersistentSampler):
         chains by ``sweeps`` sweeps and return their :class:`Statistics` (detached)."""
         named = [(f"bias_{i}", b) for i, b in enumerate(self.model.biases())]
         named += [(f"weight_{k}", w) for k, w in enumerate(self.model.weights())]
+        following = bool(self.following)
         for name, parameter in named:
             fast, last = getattr(self, f"fast_{name}"), getattr(self, f"last_{name}")
-            if bool(self.following):
+            if following:
                 fast.mul_(self.fast_decay).add_(parameter - last, alpha=self.fast_scale)
             last.copy_(parameter)
         self.following.fill_(True)

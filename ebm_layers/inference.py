@@ -176,12 +176,12 @@ class MeanField(nn.Module):
         for i in problem.free:
             if self.init == "bottom-up":
                 below = [(e, w) for e, w in zip(problem.edges, weights) if i in e and min(e) < i]
-                # Below the top, a layer also gets input from above: doubling the bottom-up weights
-                # stands in for it (the recognition pass of "Efficient Learning of Deep Boltzmann
-                # Machines", AISTATS 2010).
-                if any(i in e and max(e) > i for e in problem.edges):
-                    below = [(e, 2 * w) for e, w in below]
                 logits = F.layer_logits(marginals, i, biases, [w for _, w in below], [e for e, _ in below])
+                # Below the top, a layer also gets input from above: doubling the bottom-up input
+                # stands in for it (the recognition pass of "Efficient Learning of Deep Boltzmann
+                # Machines", AISTATS 2010); doubled on the (B, n) logits, not on a copy of the weights.
+                if any(i in e and max(e) > i for e in problem.edges):
+                    logits = 2 * logits - biases[i]
                 start = torch.sigmoid(logits).expand(problem.batch, -1)
             else:
                 start = biases[i].new_full((problem.batch, self.model.sizes[i]), self.init)

@@ -19,7 +19,7 @@ from torch.nn.functional import softplus
 from . import functional
 from ._checks import check_batch, check_binary_batch, check_data, check_model, check_real, check_size
 from ._random import resolve_generator
-from .enumeration import MAX_STATES
+from .enumeration import MAX_STATES, binary_codes
 from .graph import smallest_cover
 from .inference import MeanField
 from .model import EnergyModel
@@ -286,7 +286,9 @@ def exact_free_energy(model: EnergyModel, v: Tensor, *, max_states: int = MAX_ST
     if model.has_free_energy:
         return model.free_energy(v, dtype=torch.float64)
     v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
-    layers, total = _sampled_layers(model), posterior_states(model)
+    layers = _sampled_layers(model)
+    sizes = [model.sizes[i] for i in layers]
+    total = 2 ** sum(sizes)
     if total > max_states:
         raise ValueError(
             f"the exact free energy of this model enumerates 2^{total.bit_length() - 1} states of layers "
@@ -294,15 +296,12 @@ def exact_free_energy(model: EnergyModel, v: Tensor, *, max_states: int = MAX_ST
         )
     biases = [b.to(torch.float64) for b in model.biases()]
     weights = [w.to(torch.float64) for w in model.weights()]
-    sizes = [model.sizes[i] for i in layers]
-    shifts = torch.arange(sum(sizes))
     v = v.to(torch.float64)
     rows = max(1, min(total, _CHUNK_ELEMENTS // (v.shape[0] * sum(model.sizes))))
     parts = []
     for start in range(0, total, rows):
-        codes = torch.arange(start, min(start + rows, total))
-        bits = ((codes[:, None] >> shifts) & 1).to(torch.float64)  # (S, sum(sizes))
-        count = len(codes)
+        bits = binary_codes(start, min(start + rows, total), sum(sizes))  # (S, sum(sizes))
+        count = len(bits)
         given = {0: v.repeat_interleave(count, dim=0)}
         for i, states in zip(layers, bits.split(sizes, dim=1)):
             given[i] = states.repeat(v.shape[0], 1)

@@ -147,10 +147,8 @@ class TwoPhaseObjective(nn.Module):
                 f"sparsity_target={sparsity_target} with centering=True is not supported: the sparsity "
                 "term is written for the ordinary parametrisation; use one or the other"
             )
-        if data is not None:
-            if not centering:
-                raise ValueError("data= sets the centering offsets; it needs centering=True")
-            data = check_batch("data", data, model.sizes[0], dtype=model.dtype)
+        if data is not None and not centering:
+            raise ValueError("data= sets the centering offsets; it needs centering=True")
         offset_decay = check_real("offset_decay", offset_decay)
         if not 0.0 <= offset_decay <= 1.0:
             raise ValueError(f"offset_decay must lie in [0, 1], got {offset_decay}")

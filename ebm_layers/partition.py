@@ -336,7 +336,7 @@ def _summed_class(model: EnergyModel) -> tuple[int, ...]:
     return (hidden or classes or [()])[0]
 
 
-def _base_biases(model: EnergyModel, data: Tensor | None, base: str) -> list[Tensor]:
+def _base_biases(model: EnergyModel, data: Tensor | None, base: str | None) -> list[Tensor]:
     """Biases of the base model: visible log-odds of the data's base rates (or zero), hidden zero."""
     biases = [torch.zeros_like(b.detach()) for b in model.biases()]
     if base is None:

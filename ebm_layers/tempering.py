@@ -8,7 +8,6 @@ from torch import Tensor
 
 from . import functional as F
 from ._checks import check_batch, check_size
-from .functional import base_rate_logits
 from .model import EnergyModel
 from .sampling import PersistentSampler, gibbs_sweep
 
@@ -75,7 +74,7 @@ class ReplicaExchangeSampler(PersistentSampler):
         base = torch.zeros(model.sizes[0], dtype=model.dtype)
         if data is not None:
             data = check_batch("data", data, model.sizes[0], dtype=model.dtype)
-            base = base_rate_logits(data, pseudocount=1.0).to(model.dtype)
+            base = F.base_rate_logits(data, pseudocount=1.0).to(model.dtype)
         self.register_buffer("inverse_temperatures", betas)
         self.register_buffer("base_bias", base)
         self.register_buffer("swap_attempts", torch.zeros(num_replicas - 1, dtype=torch.float64))
