@@ -4,7 +4,8 @@
 ("On the Quantitative Analysis of Deep Belief Networks", ICML 2008, spacing from memory) at
 several numbers of intermediate distributions: error against the exact value, bracket width,
 effective sample size and time, side by side; then the test log-likelihood from forward AIS
-(optimistic) and reverse annealing (conservative) against the exact value.
+(high on average, with exact free energies) and reverse annealing (low on average) against the exact
+value.
 
     python benchmarks/ais.py [--epochs 100] [--betas 1000 10000] [--repeats 3]
 
@@ -135,8 +136,8 @@ def main() -> None:
             )
             seconds = time.perf_counter() - start
             print(
-                f"test log-likelihood: exact {exact:.4f}, forward AIS (optimistic) {forward:.4f}, "
-                f"reverse (conservative) {reverse:.4f}; gap {forward - reverse:.4f} nats "
+                f"test log-likelihood: exact {exact:.4f}, forward AIS (high on average) {forward:.4f}, "
+                f"reverse (low on average) {reverse:.4f}; gap {forward - reverse:.4f} nats "
                 f"({num_betas:,} betas, reverse over {len(test)} examples took {seconds:.1f} s)"
             )
 

@@ -7,9 +7,10 @@ phase, base-rate visible biases) from each of ``--seeds``, and the exact test lo
 per example; median, worst and every seed) and the seconds per epoch are printed. The generated
 sets are tested on their true distribution (every state with its probability: an infinite test
 set); the digits on a held-out split. Per data set also: the exact full-batch gradient for
-``--reference-steps`` steps (where the optimum lies), the rule proposed as fit's default (row
-``rule:``, see ``recommended``), the best configuration and the rule's gap to it. ``--timing``
-instead compares the rule's cost with plain chains' at larger sizes.
+``--reference-steps`` steps (where the optimum lies), ``fit`` with nothing chosen (its defaults:
+for an RBM of at most 32 visible units the small-RBM rule), the best configuration and the
+defaults' gap to it. ``--timing`` instead compares the defaults' cost with plain chains' at larger
+sizes.
 
     python benchmarks/defaults.py [--datasets ...] [--phases ...] [--rates 0.01 0.03] [--seeds 0 1 2]
                                   [--epochs 50] [--reference-steps 2000] [--tiny] [--timing]
@@ -116,24 +117,30 @@ def shifter(size: int, width: int = 8, rate: float = 0.3) -> DataSet:
     )  # fmt: skip
 
 
-def digits(pooled: bool, tiny: bool) -> DataSet:
-    """scikit-learn's bundled 8x8 digits with the 70/30 split of ``benchmarks/digits_rbm.py``:
-    pooled to 4x4 (mean of each 2x2 block, of 0-16) and binarised at >= 6, with 12 hidden units;
-    or as in that script (binarised at >= 8, 16 hidden units). Ten classes: moderately multimodal."""
+DIGITS_VIEWS = {
+    # name: (blocks of the 8x8 image averaged to a pixel, columns kept, threshold of 0-16, hidden)
+    "digits-4x4": ((2, 2), slice(None), 6, 12),  # 2x2 blocks
+    "digits-8x4": ((1, 2), slice(None), 8, 16),  # pairs of neighbouring columns
+    "digits-8x6": ((1, 1), slice(1, 7), 8, 16),  # without the first and last column
+    "digits-8x8": ((1, 1), slice(None), 8, 16),  # as in benchmarks/digits_rbm.py
+}
+
+
+def digits(name: str, tiny: bool) -> DataSet:
+    """scikit-learn's bundled 8x8 digits with the 70/30 split of ``benchmarks/digits_rbm.py``, seen
+    at the resolution ``name`` of ``DIGITS_VIEWS`` (16, 32, 48 or 64 pixels) and binarised at its
+    threshold. Ten classes: moderately multimodal."""
+    (rows, columns), kept, threshold, hidden = DIGITS_VIEWS[name]
     x, y = load_digits(return_X_y=True)
-    if pooled:
-        x = x.reshape(-1, 4, 2, 4, 2).mean((2, 4)).reshape(-1, 16)
-    binary = (x >= (6 if pooled else 8)).astype(np.float32)
+    x = x.reshape(-1, 8 // rows, rows, 8 // columns, columns).mean((2, 4))[:, :, kept]
+    binary = (x.reshape(len(x), -1) >= threshold).astype(np.float32)
     train, test = (
         torch.from_numpy(part)
         for part in train_test_split(binary, test_size=0.3, random_state=0, stratify=y)[:2]
     )
     train, test = (train[:50], test[:20]) if tiny else (train, test)
-    source = "scikit-learn's bundled 8x8 digits (sklearn.datasets.load_digits)"
-    return DataSet(
-        "digits-4x4" if pooled else "digits-8x8", train, test, torch.full((len(test),), 1.0 / len(test)),
-        12 if pooled else 16, source + (", pooled 2x2" if pooled else ""),
-    )  # fmt: skip
+    source = f"scikit-learn's bundled 8x8 digits (sklearn.datasets.load_digits) as {name[7:]}"
+    return DataSet(name, train, test, torch.full((len(test),), 1.0 / len(test)), hidden, source)
 
 
 @torch.no_grad()
@@ -185,14 +192,14 @@ def replica_exchange(replicas: int, sweeps: int = 1, note: str = "") -> tuple[st
 
 
 PHASES: dict[str, tuple[str, Phase]] = {
-    "plain": persistent(1, " (fit's default)"),
+    "plain": persistent(1, " (fit's default beyond small RBMs)"),
     "sweeps2": persistent(2),
     "sweeps5": persistent(5),
     "re10": replica_exchange(10, note=" (fit's aid)"),
     "re4": replica_exchange(4),
     "re2": replica_exchange(2),
     "re4s2": replica_exchange(4, 2),
-    "re2s2": replica_exchange(2, 2),
+    "re2s2": replica_exchange(2, 2, " (fit's, small RBMs)"),
     "fast": (
         "fast weights, 100 x 1 (fit's aid: the optimizer's steps, decay 0.95)",
         lambda m, g, x: el.FastWeightsSampler(m, 100, 1, generator=g),
@@ -200,39 +207,34 @@ PHASES: dict[str, tuple[str, Phase]] = {
     "exact": ("exact model statistics (enumeration)", lambda m, g, x: EnumeratedStatistics(m)),
 }
 
-# The rule measured here as a default (see benchmarks/README.md): a small visible layer gets a higher
-# rate and replica exchange with one hotter copy and two sweeps per step, which keeps the chains moving
-# between modes at that rate; from SMALL_VISIBLE + 1 units on, fit's present default. Measured by this
-# script (16-20 visible units) and benchmarks/digits_rbm.py (64 units); 32 is a guess between the two.
-# In fit the rule also needs at most 100 hidden units: beyond, it costs over 2x plain chains (--timing).
-SMALL_VISIBLE, SMALL_RATE = 32, 0.03
-
-
-def recommended(model: el.EnergyModel) -> tuple[str, float]:
-    """The rule's negative phase (a key of PHASES) and starting rate for ``model``."""
-    return ("re2s2", SMALL_RATE) if model.sizes[0] <= SMALL_VISIBLE else ("plain", 0.01)
-
-
-def recommended_phase(data: DataSet) -> str:
-    return recommended(el.rbm(data.train.shape[1], data.hidden))[0]
-
 
 def train_once(data: DataSet, phase: str | None, rate: float | None, seed: int, epochs: int) -> tuple:
-    """Train a fresh RBM with ``fit`` (``phase`` None: the rule's phase and rate); return the test
-    log-likelihood, the seconds per epoch and the rate used."""
+    """Train a fresh RBM with ``fit`` (``phase`` None: fit's own defaults, its rule for small RBMs);
+    return the test log-likelihood, the seconds per epoch and the starting rate."""
     g = torch.Generator().manual_seed(seed)
     model = el.rbm(data.train.shape[1], data.hidden, generator=g)
-    if phase is None:
-        phase, rate = recommended(model)
-    negative = PHASES[phase][1](model, g, data.train)
-    objective = el.TwoPhaseObjective(model, el.MeanField(model, init="bottom-up"), negative)
-    optimizer, scheduler = el.default_optimizer(model, epochs, rate)
-    result = el.fit(
-        model, data.train, epochs=epochs, objective=objective, optimizer=optimizer,
-        scheduler=scheduler, progress=False, generator=g,
-    )  # fmt: skip
-    seconds = statistics.mean(record["seconds"] for record in result.history)
+    seconds, rate = fit_epochs(model, data.train, epochs, g, phase, rate)
     return test_log_likelihood(model, data), seconds, rate
+
+
+def fit_epochs(
+    model: el.EnergyModel,
+    train: torch.Tensor,
+    epochs: int,
+    g: torch.Generator,
+    phase: str | None,
+    rate: float | None,
+) -> tuple[float, float]:
+    """``fit`` with the negative phase ``phase`` of PHASES at ``rate``, or with every default (None);
+    return the mean seconds per epoch and the starting rate."""
+    options = {}
+    if phase is not None:
+        negative = PHASES[phase][1](model, g, train)
+        objective = el.TwoPhaseObjective(model, el.MeanField(model, init="bottom-up"), negative)
+        optimizer, scheduler = el.default_optimizer(model, epochs, rate)
+        options = dict(objective=objective, optimizer=optimizer, scheduler=scheduler)
+    result = el.fit(model, train, epochs=epochs, progress=False, generator=g, **options)
+    return statistics.mean(record["seconds"] for record in result.history), result.history[0]["learning_rate"]
 
 
 def exact_reference(data: DataSet, seed: int, steps: int, rate: float) -> float:
@@ -252,23 +254,19 @@ def exact_reference(data: DataSet, seed: int, steps: int, rate: float) -> float:
 
 
 def timing(sizes: list[tuple[int, int]], rows: int, epochs: int) -> None:
-    """Seconds per epoch of plain chains and of the rule's sampler on random data, interleaved."""
-    print(f"\ncost of the rule's sampler against plain chains: {rows} random rows, {epochs} epochs, batch 10")
-    print(f"{'RBM':>9} {'plain s/epoch':>14} {'rule s/epoch':>13} {'ratio':>6}")
+    """Seconds per epoch of plain chains and of fit's defaults on random data, interleaved."""
+    print(f"\ncost of fit's defaults against plain chains: {rows} random rows, {epochs} epochs, batch 10")
+    print(f"{'RBM':>9} {'plain s/epoch':>14} {'fit s/epoch':>12} {'ratio':>6}")
     data_generator = torch.Generator().manual_seed(DATA_SEED)
     for n_v, n_h in sizes:
         train = torch.bernoulli(torch.full((rows, n_v), 0.3), generator=data_generator)
-        times = {"plain": [], recommended(el.rbm(n_v, n_h))[0]: []}
+        times = {"plain": [], None: []}
         for _ in range(3):  # interleaved, so a change of machine load hits both
-            for phase in times:
+            for phase, row in times.items():
                 g = torch.Generator().manual_seed(0)
-                model = el.rbm(n_v, n_h, generator=g)
-                negative = PHASES[phase][1](model, g, train)
-                objective = el.TwoPhaseObjective(model, el.MeanField(model, init="bottom-up"), negative)
-                result = el.fit(model, train, epochs=epochs, objective=objective, progress=False, generator=g)
-                times[phase].append(statistics.median(record["seconds"] for record in result.history))
-        plain, rule = (statistics.median(t) for t in times.values())
-        print(f"{f'{n_v}-{n_h}':>9} {plain:>14.3f} {rule:>13.3f} {rule / plain:>6.2f}", flush=True)
+                row.append(fit_epochs(el.rbm(n_v, n_h, generator=g), train, epochs, g, phase, None)[0])
+        plain, default = (statistics.median(t) for t in times.values())
+        print(f"{f'{n_v}-{n_h}':>9} {plain:>14.3f} {default:>12.3f} {default / plain:>6.2f}", flush=True)
 
 
 def main() -> None:
@@ -288,7 +286,7 @@ def main() -> None:
     parser.add_argument("--train-size", type=int, default=None, help="training rows of the generated sets")
     parser.add_argument("--tiny", action="store_true", help="smoke test: tiny training sets")
     parser.add_argument(
-        "--timing", action="store_true", help="only the rule's cost against plain chains at larger sizes"
+        "--timing", action="store_true", help="only the defaults' cost against plain chains at larger sizes"
     )
     args = parser.parse_args()
     torch.set_num_threads(1)  # the runs are small: one thread is fastest and repeatable
@@ -317,27 +315,27 @@ def main() -> None:
                 f"median {statistics.median(values):.3f} (seeds {' '.join(f'{v:.3f}' for v in values)})",
                 flush=True,
             )
-        print(f"{'negative phase':<52} {'rate':>6} {'median':>8} {'worst':>8} {'s/epoch':>8}  seeds")
+        print(f"{'negative phase':<70} {'rate':>6} {'median':>8} {'worst':>8} {'s/epoch':>8}  seeds")
         rows = {}
         for phase, rate in itertools.product([*args.phases, None], args.rates):
             if phase is None and rows.get(None):
-                continue  # the rule chooses its own rate: one row
+                continue  # fit chooses its own rate: one row
             runs = [train_once(data, phase, rate, seed, args.epochs) for seed in args.seeds]
             values = [v for v, _, _ in runs]
             seconds = statistics.median(s for _, s, _ in runs)
             rows[phase] = rows.get(phase, []) + [(statistics.median(values), runs[0][2], seconds)]
-            label = PHASES[phase][0] if phase else f"rule: {PHASES[recommended_phase(data)][0]}"
+            label = PHASES[phase][0] if phase else "fit's defaults (nothing chosen)"
             print(
-                f"{label:<52} {runs[0][2]:>6g} {rows[phase][-1][0]:>8.3f} {min(values):>8.3f} "
+                f"{label:<70} {runs[0][2]:>6g} {rows[phase][-1][0]:>8.3f} {min(values):>8.3f} "
                 f"{seconds:>8.3f}  {' '.join(f'{v:.3f}' for v in values)}",
                 flush=True,
             )
         best = max((value, phase, rate) for phase, row in rows.items() if phase for value, rate, _ in row)
-        rule, plain = rows[None][0], [seconds for *_, seconds in rows.get("plain", [])]
-        cost = f", {rule[2] / statistics.median(plain):.2f}x plain chains' s/epoch" if plain else ""
+        default, plain = rows[None][0], [seconds for *_, seconds in rows.get("plain", [])]
+        cost = f", {default[2] / statistics.median(plain):.2f}x plain chains' s/epoch" if plain else ""
         print(
-            f"best: {PHASES[best[1]][0]} at {best[2]:g}, {best[0]:.3f}; rule {rule[0]:.3f}, "
-            f"gap {best[0] - rule[0]:.3f} nats (target <= 0.1){cost}"
+            f"best: {PHASES[best[1]][0]} at {best[2]:g}, {best[0]:.3f}; fit's defaults {default[0]:.3f}, "
+            f"gap {best[0] - default[0]:.3f} nats (target <= 0.1){cost}"
         )
     print(f"\ntook {time.perf_counter() - began:.0f} s")
 
@@ -346,10 +344,14 @@ DATASETS: dict[str, Callable[[bool], DataSet]] = {
     "bars-stripes": lambda tiny, size: bars_and_stripes(50 if tiny else size or 1000),
     "prototypes": lambda tiny, size: prototypes(50 if tiny else size or 1000),
     "shifter": lambda tiny, size: shifter(50 if tiny else size or 1000),
-    "digits-4x4": lambda tiny, size: digits(True, tiny),
+    "digits-4x4": lambda tiny, size: digits("digits-4x4", tiny),
 }
-# Not in the default list: the data of benchmarks/digits_rbm.py, for its target (run with --epochs 100).
-EXTRA_DATASETS = {"digits-8x8": lambda tiny, size: digits(False, tiny)}
+# Not in the default list: the digits at 32, 48 and 64 pixels, where the small-RBM rule ends; the
+# 64 are the data of benchmarks/digits_rbm.py, for its target (run with --epochs 100).
+EXTRA_DATASETS = {
+    name: lambda tiny, size, name=name: digits(name, tiny)
+    for name in ("digits-8x4", "digits-8x6", "digits-8x8")
+}
 
 if __name__ == "__main__":
     main()

@@ -139,22 +139,22 @@ class ReplicaExchangeSampler(PersistentSampler):
         count, replicas = self.num_particles, self.num_replicas
         first = int(self.sweeps_done) % 2
         self.sweeps_done += 1
-        pairs = torch.arange(first, replicas - 1, 2)
-        if pairs.numel() == 0:
+        if first >= replicas - 1:
             return
+        lower, upper = slice(first, replicas - 1, 2), slice(first + 1, replicas, 2)  # the pairs (k, k + 1)
         gap = (self.model.energy(states) + states[0] @ self.base_bias).to(torch.float64).view(replicas, count)
         betas = self.inverse_temperatures
-        log_ratio = (betas[pairs] - betas[pairs + 1])[:, None] * (gap[pairs] - gap[pairs + 1])  # (pairs, P)
+        log_ratio = (betas[lower] - betas[upper])[:, None] * (gap[lower] - gap[upper])  # (pairs, P)
         uniform = torch.rand(log_ratio.shape, dtype=torch.float64, generator=self.generator)
         accept = self._accept(log_ratio, uniform)
-        self.swap_attempts[pairs] += count
-        self.swap_accepts[pairs] += accept.sum(1).to(torch.float64)
-        rows = torch.arange(replicas * count).view(replicas, count)
-        lower, upper = rows[pairs][accept], rows[pairs + 1][accept]
-        order = torch.arange(replicas * count)  # row r of the result comes from row order[r]
-        order[lower], order[upper] = upper, lower
+        self.swap_attempts[lower] += count
+        self.swap_accepts[lower] += accept.sum(1).to(torch.float64)
+        order = torch.arange(replicas * count).view(replicas, count)  # row r of the result: row order[r]
+        below, above = order[lower], order[upper]
+        order[lower], order[upper] = torch.where(accept, above, below), torch.where(accept, below, above)
+        order = order.view(-1)
         for i, x in enumerate(states):
-            states[i] = x[order]
+            states[i] = x.index_select(0, order)
 
     @staticmethod
     def _accept(log_ratio: Tensor, uniform: Tensor) -> Tensor:

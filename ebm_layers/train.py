@@ -49,6 +49,15 @@ DEFAULT_LEARNING_RATE = 0.01
 DEFAULT_DEEP_LEARNING_RATE = 0.001
 DEFAULT_NUM_PARTICLES = 100
 DEFAULT_SWEEPS = 1
+# Small RBMs, measured by benchmarks/defaults.py (four data sets of 16-20 visible units with exact
+# likelihoods, and the digits at 32, 48 and 64 pixels): they do best at a higher rate, where plain
+# chains lose modes and replica exchange with one hotter copy keeps them. More than 100 hidden units
+# and the sampler costs over 2x plain chains per epoch.
+SMALL_RBM_VISIBLE = 32
+SMALL_RBM_HIDDEN = 100
+SMALL_RBM_LEARNING_RATE = 0.03
+SMALL_RBM_REPLICAS = 2
+SMALL_RBM_SWEEPS = 2
 
 _CHECKPOINT_FORMAT = "ebm_layers.fit/1"
 
@@ -119,17 +128,20 @@ def fit(
     generator: torch.Generator | None = None,
     pretrain_epochs: int | None = None,
     distributed: bool = False,
-    mixing_aid: str | None = None,
+    mixing_aid: str | None = "auto",
     stage: str = "training",
 ) -> FitResult:
     """Train ``model`` on ``data`` for ``epochs`` passes with the two-phase learning rule.
 
-    With no other argument this uses defaults measured by ``benchmarks/digits_rbm.py`` (RBMs) and
-    ``benchmarks/digits_features.py`` (deep chains): mean field started from a bottom-up pass for
-    the data phase; 100 persistent
-    chains advanced one sweep per batch for the model phase; batches of 10; Adam at learning rate
-    0.01 (0.001 for a deep model, three layers or more), decayed linearly towards zero over
-    ``epochs`` (see :func:`default_optimizer`). With tensor data, an untrained model's
+    With no other argument this uses defaults measured by ``benchmarks/digits_rbm.py`` (RBMs),
+    ``benchmarks/defaults.py`` (small RBMs) and ``benchmarks/digits_features.py`` (deep chains):
+    mean field started from a bottom-up pass for the data phase; 100 persistent chains advanced one
+    sweep per batch for the model phase; batches of 10; Adam at learning rate 0.01 (0.001 for a
+    deep model, three layers or more), decayed linearly towards zero over ``epochs`` (see
+    :func:`default_optimizer`). A small RBM (at most ``SMALL_RBM_VISIBLE`` = 32 visible and
+    ``SMALL_RBM_HIDDEN`` = 100 hidden units) starts at 0.03 instead, and its 100 chains take two
+    sweeps per batch with replica exchange against one hotter copy each (``mixing_aid="auto"``).
+    With tensor data, an untrained model's
     (:meth:`EnergyModel.untrained`: every weight as built) all-zero visible biases are first set
     to the log-odds of the data's base rates (:meth:`EnergyModel.init_visible_bias_from`), and an
     untrained deep chain (three layers or more, as built by :func:`dbm`) is first pretrained
@@ -180,11 +192,14 @@ def fit(
             and hold every rank's particles and generators, so ``resume`` continues each rank
             bit-identically (with the same number of ranks). Pretraining, when it runs, is repeated
             identically on every rank. Callbacks run on every rank and must decide ``stop`` alike.
-        mixing_aid: for the default objective, ``"fast-weights"`` (:class:`FastWeightsSampler`:
-            fast steps the size of the optimizer's, decay 0.95) or
-            ``"replica-exchange"`` (:class:`ReplicaExchangeSampler`, 10 temperatures towards the
-            data's base rates) instead of plain persistent chains; see ``benchmarks/mixing.py``
-            for what each did on the demo data.
+        mixing_aid: the default objective's model phase: ``"auto"`` (the default: as above,
+            replica exchange for a small RBM, else plain persistent chains), ``None`` (plain
+            persistent chains whatever the model; at a small RBM's default rate of 0.03 they lost
+            modes on strongly multimodal data), ``"fast-weights"`` (:class:`FastWeightsSampler`:
+            fast steps the size of the optimizer's, decay 0.95) or ``"replica-exchange"``
+            (:class:`ReplicaExchangeSampler`, 10 temperatures towards the data's base rates); see
+            ``benchmarks/mixing.py`` for what each did on the demo data, ``benchmarks/defaults.py``
+            on small data sets.
         stage: the name of this run in the progress bar and in every history record
             (:func:`pretrain` names its RBMs ``"pretraining RBM k/L"``).
 
@@ -214,7 +229,7 @@ def fit(
         objective = TwoPhaseObjective(model, MeanField(model, init="bottom-up"), sampler)
     elif not isinstance(objective, TwoPhaseObjective):
         raise TypeError(f"objective must be a TwoPhaseObjective, got {type(objective).__name__}")
-    elif mixing_aid is not None:
+    elif mixing_aid != "auto":
         raise ValueError(
             "mixing_aid chooses the default objective's sampler; with your own objective, build it in"
         )
@@ -368,7 +383,7 @@ def fit(
     return result
 
 
-MIXING_AIDS = (None, "fast-weights", "replica-exchange")
+MIXING_AIDS = ("auto", None, "fast-weights", "replica-exchange")
 
 
 def _default_sampler(
@@ -376,7 +391,10 @@ def _default_sampler(
 ) -> PersistentSampler:
     """The default objective's negative phase: persistent chains, with ``mixing_aid`` if any."""
     options = dict(num_particles=DEFAULT_NUM_PARTICLES, sweeps=DEFAULT_SWEEPS, generator=generator)
-    if mixing_aid is None:
+    if mixing_aid == "auto" and _is_small_rbm(model):
+        options["sweeps"] = SMALL_RBM_SWEEPS
+        return ReplicaExchangeSampler(model, **options, num_replicas=SMALL_RBM_REPLICAS, data=data)
+    if mixing_aid in ("auto", None):
         return PersistentSampler(model, **options)
     if mixing_aid == "fast-weights":
         return FastWeightsSampler(model, **options)
@@ -385,13 +403,19 @@ def _default_sampler(
     raise ValueError(f"mixing_aid must be one of {MIXING_AIDS}, got {mixing_aid!r}")
 
 
+def _is_small_rbm(model: EnergyModel) -> bool:
+    """An RBM with at most ``SMALL_RBM_VISIBLE`` visible and ``SMALL_RBM_HIDDEN`` hidden units."""
+    visible, hidden = model.sizes[0], model.sizes[-1]
+    return model.edges == ((0, 1),) and visible <= SMALL_RBM_VISIBLE and hidden <= SMALL_RBM_HIDDEN
+
+
 def default_optimizer(
     model: EnergyModel, epochs: int, learning_rate: float | None = None
 ) -> tuple[torch.optim.Optimizer, torch.optim.lr_scheduler.LRScheduler]:
     """``fit``'s default optimizer and scheduler: Adam at ``learning_rate`` (default
-    ``DEFAULT_LEARNING_RATE`` for an RBM or any two-layer model, ``DEFAULT_DEEP_LEARNING_RATE``
-    for three layers or more), decayed linearly towards zero over ``epochs`` (epoch ``e`` runs at
-    ``1 - e / epochs`` of it)."""
+    ``SMALL_RBM_LEARNING_RATE`` for a small RBM, see :func:`fit`, ``DEFAULT_DEEP_LEARNING_RATE``
+    for three layers or more, else ``DEFAULT_LEARNING_RATE``), decayed linearly towards zero over
+    ``epochs`` (epoch ``e`` runs at ``1 - e / epochs`` of it)."""
     learning_rate = (
         _default_learning_rate(model)
         if learning_rate is None
@@ -405,7 +429,9 @@ def default_optimizer(
 
 
 def _default_learning_rate(model: EnergyModel) -> float:
-    """``DEFAULT_DEEP_LEARNING_RATE`` for three layers or more, else ``DEFAULT_LEARNING_RATE``."""
+    """The starting rate for ``model``: see :func:`default_optimizer`."""
+    if _is_small_rbm(model):
+        return SMALL_RBM_LEARNING_RATE
     return DEFAULT_DEEP_LEARNING_RATE if len(model.layers) > 2 else DEFAULT_LEARNING_RATE
 
 

@@ -8,7 +8,7 @@ noise. Every type is a mode of the data. The script
 1. trains a 144-200-100 chain: greedy pretraining from RBMs (``pretrain``), then joint training
    with ``fit``, with a rough AIS log-likelihood at a few epochs. Both use lower learning rates
    than ``fit``'s defaults (Adam at 0.001 for the RBMs, 0.0003 jointly): on these data they gave
-   samples closer to the data's type shares and a better conservative likelihood
+   samples closer to the data's type shares and a better reverse-AIS likelihood
    (``benchmarks/learning_rate.py``), while the defaults were chosen on the 8x8 digits;
 2. estimates log Z by annealed importance sampling, with its bracket, and the test
    log-likelihood from both annealing directions: the importance-sampled estimate with the

@@ -139,7 +139,8 @@ def test_each_rbm_trains_at_the_learning_rate_asked_for():
         rates = [record["learning_rate"] for record in result.history]
         assert rates == pytest.approx([0.003, 0.00225, 0.0015, 0.00075])
     default = el.pretrain(el.dbm(6, 5, 4), data, epochs=1, progress=False)  # negative control
-    assert default[0].history[0]["learning_rate"] == pytest.approx(el.train.DEFAULT_LEARNING_RATE)
+    # fit's own rate for the first RBM, 12-5 with its tied copies: a small RBM
+    assert default[0].history[0]["learning_rate"] == pytest.approx(el.train.SMALL_RBM_LEARNING_RATE)
 
 
 def test_fit_warns_that_a_data_loader_skips_pretraining():

@@ -145,7 +145,7 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
     [
         ("enumeration.py", ["--visible", "8", "--hidden", "5"], "plain one-shot torch / exact_log_partition"),
         ("meanfield.py", ["--sizes", "12", "8", "6", "--batch", "4"], "GEMM roofline/call"),
-        ("ais.py", ["--epochs", "1", "--betas", "20", "--repeats", "1"], "reverse (conservative)"),
+        ("ais.py", ["--epochs", "1", "--betas", "20", "--repeats", "1"], "reverse (low on average)"),
         ("ais.py", ["--speed", "--betas", "20"], "AIS / products"),
         (
             "training_step.py",

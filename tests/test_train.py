@@ -237,7 +237,8 @@ def test_callbacks_see_batches_and_epochs_and_can_stop():
     ]
     assert len(result.history) == 2
     record = result.history[-1]
-    assert record["learning_rate"] == pytest.approx(0.01 * (1 - 1 / 5))  # linear decay over 5 epochs
+    rate = el.train.SMALL_RBM_LEARNING_RATE  # fit's starting rate for a small RBM
+    assert record["learning_rate"] == pytest.approx(rate * (1 - 1 / 5))  # linear decay over 5 epochs
     assert record["mean_field_iterations"] == 1 and record["free_energy_gap"] is None
 
 
@@ -351,6 +352,7 @@ def test_checkpointing_with_an_unseeded_shuffling_loader_warns(tmp_path):
 @pytest.mark.parametrize(
     ("aid", "kind"),
     [
+        ("auto", el.ReplicaExchangeSampler),  # a small RBM: see the next test
         (None, el.PersistentSampler),
         ("fast-weights", el.FastWeightsSampler),
         ("replica-exchange", el.ReplicaExchangeSampler),
@@ -361,6 +363,29 @@ def test_fit_selects_a_mixing_aid(aid, kind):
     data = torch.bernoulli(torch.full((30, 6), 0.3), generator=g)
     result = el.fit(el.rbm(6, 3, generator=g), data, epochs=1, mixing_aid=aid, progress=False, generator=g)
     assert type(result.objective.negative) is kind and len(result.history) == 1
+
+
+@pytest.mark.parametrize(
+    ("sizes", "small"),
+    [((6, 3), True), ((32, 100), True), ((33, 16), False), ((16, 101), False), ((6, 5, 4), False)],
+)
+def test_fit_defaults_follow_the_size_of_the_model(sizes, small):
+    # The small-RBM rule measured by benchmarks/defaults.py: 0.03 with replica exchange against one
+    # hotter copy and 2 sweeps per batch; beyond it, plain chains at 0.01 (0.001 for a deep model).
+    g = torch.Generator().manual_seed(0)
+    model = el.rbm(*sizes, generator=g) if len(sizes) == 2 else el.dbm(*sizes, generator=g)
+    data = torch.bernoulli(torch.full((20, sizes[0]), 0.3), generator=g)
+    result = el.fit(model, data, epochs=1, progress=False, generator=g, pretrain_epochs=0)
+    negative = result.objective.negative
+    rate = result.history[0]["learning_rate"]
+    if small:
+        assert type(negative) is el.ReplicaExchangeSampler
+        assert (negative.num_replicas, negative.sweeps, rate) == (2, 2, 0.03)
+        expected = el.functional.base_rate_logits(data, pseudocount=1.0).float()
+        torch.testing.assert_close(negative.base_bias, expected)  # towards the data's base rates
+    else:
+        assert type(negative) is el.PersistentSampler and negative.sweeps == 1
+        assert rate == (0.001 if len(sizes) > 2 else 0.01)
 
 
 def test_fit_refuses_an_unknown_mixing_aid_or_one_beside_an_objective():
@@ -389,14 +414,15 @@ def test_resume_with_more_epochs_goes_on_decaying_from_the_last_rate(tmp_path):
     trained = finished[0].couplings[0].weight.detach().clone()
     model, result = small_run(tmp_path, epochs=5, resume=True)
     rates = _rates(result)
-    # Epoch 2 ran at 0.01 * (1 - 1/2); the rest decays linearly to zero at epoch 5 (mathematics).
-    torch.testing.assert_close(rates, [0.01, 0.005, 0.005 * 3 / 4, 0.005 * 2 / 4, 0.005 * 1 / 4])
+    # Epoch 2 ran at r * (1 - 1/2); the rest decays linearly to zero at epoch 5 (mathematics).
+    r = el.train.SMALL_RBM_LEARNING_RATE  # fit's starting rate for the small RBM
+    torch.testing.assert_close(rates, [r * k for k in (1, 1 / 2, 3 / 8, 2 / 8, 1 / 8)])
     assert not torch.equal(model.couplings[0].weight, trained)
     # Interrupted at 2 of 4 and resumed with 6: the same rule from epoch 2's rate 0.01 * 3/4.
     with pytest.raises(KeyboardInterrupt):
         small_run(tmp_path / "b", epochs=4, stop_after=2)
     _, result = small_run(tmp_path / "b", epochs=6, resume=True)
-    torch.testing.assert_close(_rates(result)[2:], [0.0075 * k / 5 for k in (4, 3, 2, 1)])
+    torch.testing.assert_close(_rates(result)[2:], [r * 3 / 4 * k / 5 for k in (4, 3, 2, 1)])
 
 
 def test_a_scheduler_that_ends_before_the_last_epoch_warns():
