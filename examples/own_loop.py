@@ -1,4 +1,5 @@
-"""Train an RBM in a plain torch loop: everything fit() does, by hand.
+"""Train an RBM in a plain torch loop: the loop fit() runs (shuffling, monitors, atomic checkpoints,
+resume), by hand, with choices of your own (plain persistent chains, weight decay, clipping).
 
 The data are invented on/off flags of 16 sensors on a machine that runs in one of four modes;
 each mode switches on its own group of sensors, with a few flags flipped at random.
