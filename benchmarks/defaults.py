@@ -35,6 +35,7 @@ from sklearn.datasets import load_digits
 from sklearn.model_selection import train_test_split
 
 import ebm_layers as el
+from ebm_layers.enumeration import binary_codes
 from ebm_layers.statistics import Statistics
 
 DATA_SEED = 1234  # every data set is drawn from this seed; --seeds vary the model and the training only
@@ -54,8 +55,8 @@ class DataSet:
 
 
 def all_states(bits: int) -> torch.Tensor:
-    """Every binary vector of ``bits`` units, ``(2^bits, bits)``, unit 0 the lowest bit."""
-    return ((torch.arange(2**bits)[:, None] >> torch.arange(bits)) & 1).float()
+    """Every binary vector of ``bits`` units, ``(2^bits, bits)`` float32, unit 0 the lowest bit."""
+    return binary_codes(0, 2**bits, bits, dtype=torch.float32)
 
 
 def from_distribution(

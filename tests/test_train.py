@@ -418,7 +418,7 @@ def test_resume_with_more_epochs_goes_on_decaying_from_the_last_rate(tmp_path):
     r = el.train.SMALL_RBM_LEARNING_RATE  # fit's starting rate for the small RBM
     torch.testing.assert_close(rates, [r * k for k in (1, 1 / 2, 3 / 8, 2 / 8, 1 / 8)])
     assert not torch.equal(model.couplings[0].weight, trained)
-    # Interrupted at 2 of 4 and resumed with 6: the same rule from epoch 2's rate 0.01 * 3/4.
+    # Interrupted at 2 of 4 and resumed with 6: the same rule from epoch 2's rate r * 3/4.
     with pytest.raises(KeyboardInterrupt):
         small_run(tmp_path / "b", epochs=4, stop_after=2)
     _, result = small_run(tmp_path / "b", epochs=6, resume=True)
