@@ -26,7 +26,7 @@ import torch
 from digits_rbm import digits
 
 import ebm_layers as el
-from ebm_layers.partition import ais_log_partition, reverse_ais_log_likelihood
+from ebm_layers.evaluation.partition import ais_log_partition, reverse_ais_log_likelihood
 
 
 @torch.no_grad()

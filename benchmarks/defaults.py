@@ -35,8 +35,8 @@ from sklearn.datasets import load_digits
 from sklearn.model_selection import train_test_split
 
 import ebm_layers as el
-from ebm_layers.enumeration import binary_codes
-from ebm_layers.statistics import Statistics
+from ebm_layers.model.statistics import Statistics
+from ebm_layers.phases.exact import binary_codes
 
 DATA_SEED = 1234  # every data set is drawn from this seed; --seeds vary the model and the training only
 

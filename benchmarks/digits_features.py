@@ -42,7 +42,7 @@ from sklearn.svm import SVC
 from torch import nn
 
 import ebm_layers as el
-from ebm_layers.pretraining import DEFAULT_PRETRAIN_EPOCHS
+from ebm_layers.training.pretraining import DEFAULT_PRETRAIN_EPOCHS
 
 SIZES = (64, 100, 50)
 FROZEN_MARGIN, FINE_TUNED_TARGET = 0.01, 0.96

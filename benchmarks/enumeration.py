@@ -54,7 +54,7 @@ def main() -> None:
     print(f"  plain one-shot torch / exact_log_partition          {plain_time / ours_time:6.2f}")
     print(f"  its matrix product alone / exact_log_partition      {gemm / ours_time:6.2f}")
     print(f"  exact_log_partition with gradient / without         {gradient_time / ours_time:6.2f}")
-    rows = el.enumeration._CHUNK_ELEMENTS // (args.visible + args.hidden)
+    rows = el.phases.exact._CHUNK_ELEMENTS // (args.visible + args.hidden)
     plain_mib = 2**args.hidden * args.visible * 8 / 2**20
     chunk_mib = rows * args.visible * 8 / 2**20
     print(f"  memory: plain holds all {2**args.hidden:,} x {args.visible} inputs ({plain_mib:,.0f} MiB);")

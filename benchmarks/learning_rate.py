@@ -83,7 +83,9 @@ def main() -> None:
     parser.add_argument("--seeds", type=int, nargs="+", default=[0, 1, 2], help="seeds of data and model")
     parser.add_argument("--epochs", type=int, default=40, help="training passes (the chain: joint)")
     parser.add_argument("--joint-rate", type=float, default=None, help="the chain's joint Adam rate (fit's)")
-    parser.add_argument("--pretrain-epochs", type=int, default=el.pretraining.DEFAULT_PRETRAIN_EPOCHS)
+    parser.add_argument(
+        "--pretrain-epochs", type=int, default=el.training.pretraining.DEFAULT_PRETRAIN_EPOCHS
+    )
     parser.add_argument("--examples", type=int, default=3000)
     parser.add_argument("--test-examples", type=int, default=1000)
     parser.add_argument("--burn-in", type=int, default=2000, help="Gibbs sweeps before the samples")

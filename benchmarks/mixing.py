@@ -86,7 +86,7 @@ def compare(args) -> None:
     images, _ = parts_markings(args.examples + 1000, generator=g)
     train, test = images[: args.examples], images[args.examples :]
     base = el.dbm(*args.sizes, generator=g)
-    el.pretrain(base, train, epochs=args.pretrain_epochs or el.pretraining.DEFAULT_PRETRAIN_EPOCHS,
+    el.pretrain(base, train, epochs=args.pretrain_epochs or el.training.pretraining.DEFAULT_PRETRAIN_EPOCHS,
                 progress=False, generator=g)  # fmt: skip
     assign = el.nearest_template(marking_templates())
     rows = []

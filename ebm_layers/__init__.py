@@ -2,8 +2,7 @@
 of binary units) as composable ``torch.nn`` modules, on CPU."""
 
 from . import datasets
-from .couplings import DenseCoupling, LateralCoupling
-from .diagnostics import (
+from .evaluation.diagnostics import (
     ModeOccupancy,
     ModeTracker,
     autocorrelation_time,
@@ -15,14 +14,7 @@ from .diagnostics import (
     potential_scale_reduction,
     sampler_traces,
 )
-from .distributed import rank_generator, rank_states, wrap_distributed
-from .enumeration import ExactStatistics
-from .fast_weights import FastWeightsSampler
-from .features import ConcatenatedLayers, FeatureExtractor, feedforward_network
-from .graph import UpdateSchedule
-from .inference import MeanField
-from .layers import BinaryLayer
-from .metrics import (
+from .evaluation.metrics import (
     Evaluation,
     LogLikelihood,
     SplitMetrics,
@@ -35,20 +27,28 @@ from .metrics import (
     pseudo_log_likelihood,
     reconstruction_error,
 )
-from .model import EnergyModel, dbm, rbm
-from .objective import Monitors, TwoPhaseObjective, weight_decay_groups
-from .partition import (
+from .evaluation.partition import (
     Estimate,
     ais_log_partition,
     annealing_schedule,
     exact_log_partition,
     reverse_ais_log_likelihood,
 )
-from .pretraining import pretrain
-from .sampling import DataParticles, PersistentSampler
-from .statistics import Statistics
-from .tempering import ReplicaExchangeSampler
-from .train import FitResult, FitState, default_optimizer, fit, load_checkpoint, save_checkpoint
+from .features import ConcatenatedLayers, FeatureExtractor, feedforward_network
+from .model.couplings import DenseCoupling, LateralCoupling
+from .model.energy_model import EnergyModel, dbm, rbm
+from .model.graph import UpdateSchedule
+from .model.statistics import Statistics
+from .model.units import BinaryLayer
+from .phases.exact import ExactStatistics
+from .phases.fast_weights import FastWeightsSampler
+from .phases.gibbs import DataParticles, PersistentSampler
+from .phases.mean_field import MeanField
+from .phases.replica_exchange import ReplicaExchangeSampler
+from .training.distributed import rank_generator, rank_states, wrap_distributed
+from .training.fit import FitResult, FitState, default_optimizer, fit, load_checkpoint, save_checkpoint
+from .training.objective import Monitors, TwoPhaseObjective, weight_decay_groups
+from .training.pretraining import pretrain
 from .viz import image_grid, save_image_grid, save_training_plot
 
 __all__ = [

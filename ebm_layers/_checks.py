@@ -82,7 +82,7 @@ def check_index(name: str, value: object, count: int | None = None) -> int:
 
 def check_model(model: object) -> None:
     """Raise ``TypeError`` unless ``model`` is an :class:`~ebm_layers.model.EnergyModel`."""
-    from .model import EnergyModel  # imported here: the model module itself uses these checks
+    from .model.energy_model import EnergyModel  # imported here: the model module itself uses these checks
 
     if not isinstance(model, EnergyModel):
         raise TypeError(f"model must be an EnergyModel, got {type(model).__name__}")

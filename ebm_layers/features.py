@@ -17,8 +17,8 @@ import torch
 from torch import Tensor, nn
 
 from ._checks import check_index, check_model
-from .inference import MeanField
-from .model import EnergyModel
+from .model.energy_model import EnergyModel
+from .phases.mean_field import MeanField
 
 __all__ = ["ConcatenatedLayers", "FeatureExtractor", "feedforward_network"]
 

@@ -38,6 +38,7 @@ from torch import Tensor
 
 import ebm_layers as el
 from ebm_layers.datasets import IMAGE_SHAPE, MARKING_TYPES, marking_templates, parts_markings
+from ebm_layers.training.pretraining import DEFAULT_PRETRAIN_EPOCHS
 
 
 def softmax_regression_accuracy(
@@ -103,7 +104,10 @@ def main() -> None:
     parser.add_argument("--examples", type=int, default=3000, help="training scans (default 3000)")
     parser.add_argument("--test-examples", type=int, default=1000, help="held-out scans (default 1000)")
     parser.add_argument(
-        "--pretrain-epochs", type=int, default=el.pretraining.DEFAULT_PRETRAIN_EPOCHS, help="passes per RBM"
+        "--pretrain-epochs",
+        type=int,
+        default=DEFAULT_PRETRAIN_EPOCHS,
+        help="passes per RBM",
     )
     parser.add_argument("--pretrain-learning-rate", type=float, default=0.001, help="the RBMs' Adam rate")
     parser.add_argument("--learning-rate", type=float, default=0.0003, help="joint training's Adam rate")
@@ -214,7 +218,7 @@ def main() -> None:
         "labels": {
             "test_log_likelihood_mean_field": test_metrics.log_likelihood_label,
             "test_log_likelihood_estimate": test_metrics.importance_label,
-            "test_log_likelihood_conservative": el.metrics.REVERSE_LABEL,
+            "test_log_likelihood_conservative": el.evaluation.metrics.REVERSE_LABEL,
         },
         "test_log_likelihood_estimate": test_metrics.importance_log_likelihood,
         "test_log_likelihood_conservative": test_metrics.conservative_log_likelihood,

@@ -29,7 +29,7 @@ import torch
 from torch import nn
 
 import ebm_layers as el
-from ebm_layers.pretraining import DEFAULT_PRETRAIN_EPOCHS
+from ebm_layers.training.pretraining import DEFAULT_PRETRAIN_EPOCHS
 
 try:
     from sklearn.datasets import load_digits

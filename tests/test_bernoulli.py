@@ -11,8 +11,8 @@ import pytest
 import torch
 from scipy.stats import chi2_contingency
 
-from ebm_layers import functional as F
-from ebm_layers.functional import _UNIFORM_GRID, _threshold
+from ebm_layers.model import functional as F
+from ebm_layers.model.functional import _UNIFORM_GRID, _threshold
 
 Z_BOUND = 4.5
 
@@ -126,6 +126,6 @@ def test_a_sweep_is_reproducible_from_the_generator_state():
     runs = []
     for seed in (10, 10, 11):
         states = [torch.zeros(3, n) for n in model.sizes]
-        el.sampling.gibbs_sweep(model, states, torch.Generator().manual_seed(seed))
+        el.phases.gibbs.gibbs_sweep(model, states, torch.Generator().manual_seed(seed))
         runs.append(torch.cat(states, dim=1))
     assert torch.equal(runs[0], runs[1]) and not torch.equal(runs[0], runs[2])

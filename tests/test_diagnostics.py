@@ -188,14 +188,14 @@ def test_mixing_during_learning_leaves_the_frozen_weights_alone(monkeypatch):
     optimizer = torch.optim.SGD(model.parameters(), lr=0.05)
     before = [p.detach().clone() for p in model.parameters()]
     copies = []
-    original = el.diagnostics._frozen_copy
+    original = el.evaluation.diagnostics._frozen_copy
 
     def spy(sampler, generator):
         frozen = original(sampler, generator)
         copies.append((frozen.model, [p.detach().clone() for p in frozen.model.parameters()]))
         return frozen
 
-    monkeypatch.setattr(el.diagnostics, "_frozen_copy", spy)
+    monkeypatch.setattr(el.evaluation.diagnostics, "_frozen_copy", spy)
     el.mixing_during_learning(objective, optimizer, images, lambda x: x[:, 0].long(), updates=3, snapshots=1)
     ((frozen_model, at_copy),) = copies
     assert frozen_model is not model

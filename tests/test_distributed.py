@@ -28,7 +28,7 @@ import torch.distributed as dist
 import torch.multiprocessing as mp
 
 import ebm_layers as el
-from ebm_layers.statistics import Statistics
+from ebm_layers.model.statistics import Statistics
 from tests.conftest import assert_unchanged, snapshot
 
 pytestmark = pytest.mark.skipif(not dist.is_available(), reason="this torch build has no torch.distributed")

@@ -1,6 +1,6 @@
 """Ground truth: the library against brute-force enumeration of every joint state.
 
-The reference is written from the mathematics alone, without ``ebm_layers.functional``: all
+The reference is written from the mathematics alone, without ``ebm_layers.model.functional``: all
 units are stacked into one vector x of N units and E(x) = -b.x - 1/2 x J x^T, with J the
 symmetric interaction matrix assembled from the couplings (a dense W between layers a and b
 fills block (a, b) with W and block (b, a) with W^T; a lateral L fills block (a, a)). Then
@@ -23,7 +23,7 @@ from torch import Tensor
 from torch.nn.functional import softplus
 
 import ebm_layers as el
-from ebm_layers import enumeration
+from ebm_layers.phases import exact as enumeration
 
 # Library and reference both compute in float64, so they may differ by rounding only.
 RTOL, ATOL = 1e-9, 1e-12

@@ -15,7 +15,7 @@ import pytest
 import torch
 
 import ebm_layers as el
-from ebm_layers.statistics import Statistics
+from ebm_layers.model.statistics import Statistics
 
 
 def setup(seed: int = 0, **options):

@@ -17,8 +17,9 @@ from sklearn.neural_network import BernoulliRBM
 from torch import Tensor
 
 import ebm_layers as el
-from ebm_layers import functional, metrics
-from ebm_layers.partition import ais_log_partition
+from ebm_layers.evaluation import metrics
+from ebm_layers.evaluation.partition import ais_log_partition
+from ebm_layers.model import functional
 from tests.conftest import assert_unchanged, snapshot
 from tests.test_exact import (
     CLOSED_FORM,

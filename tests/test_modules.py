@@ -9,7 +9,7 @@ import torch
 from scipy.special import logit
 
 import ebm_layers as el
-from ebm_layers.graph import colour_classes, smallest_cover
+from ebm_layers.model.graph import colour_classes, smallest_cover
 from tests.conftest import make_lateral_model
 
 

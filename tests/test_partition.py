@@ -28,8 +28,9 @@ import torch
 from torch import Tensor
 
 import ebm_layers as el
-from ebm_layers import functional, partition
-from ebm_layers.partition import ais_log_partition, annealing_schedule, reverse_ais_log_likelihood
+from ebm_layers.evaluation import partition
+from ebm_layers.evaluation.partition import ais_log_partition, annealing_schedule, reverse_ais_log_likelihood
+from ebm_layers.model import functional
 from tests.conftest import assert_unchanged, snapshot
 from tests.test_exact import brute_force, build, randomize
 

@@ -15,9 +15,9 @@ import torch
 from torch.utils.data import DataLoader, TensorDataset
 
 import ebm_layers as el
-from ebm_layers import functional as F
-from ebm_layers.pretraining import DEFAULT_PRETRAIN_EPOCHS
-from ebm_layers.pretraining import _free as free
+from ebm_layers.model import functional as F
+from ebm_layers.training.pretraining import DEFAULT_PRETRAIN_EPOCHS
+from ebm_layers.training.pretraining import _free as free
 from tests.conftest import assert_unchanged, snapshot
 
 
@@ -140,7 +140,7 @@ def test_each_rbm_trains_at_the_learning_rate_asked_for():
         assert rates == pytest.approx([0.003, 0.00225, 0.0015, 0.00075])
     default = el.pretrain(el.dbm(6, 5, 4), data, epochs=1, progress=False)  # negative control
     # fit's own rate for the first RBM, 12-5 with its tied copies: a small RBM
-    assert default[0].history[0]["learning_rate"] == pytest.approx(el.train.SMALL_RBM_LEARNING_RATE)
+    assert default[0].history[0]["learning_rate"] == pytest.approx(el.training.fit.SMALL_RBM_LEARNING_RATE)
 
 
 def test_fit_warns_that_a_data_loader_skips_pretraining():

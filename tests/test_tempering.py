@@ -21,8 +21,8 @@ import pytest
 import torch
 
 import ebm_layers as el
-from ebm_layers.statistics import Statistics
-from ebm_layers.tempering import ReplicaExchangeSampler
+from ebm_layers.model.statistics import Statistics
+from ebm_layers.phases.replica_exchange import ReplicaExchangeSampler
 from tests.test_exact import build, randomize
 
 F64 = torch.float64

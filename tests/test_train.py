@@ -160,7 +160,7 @@ KILLED_WRITER = textwrap.dedent(
     """
     import sys, time, torch
     import ebm_layers as el
-    from ebm_layers import train
+    from ebm_layers.training import fit as train
 
     path, ready = sys.argv[1], sys.argv[2]
     data = torch.bernoulli(torch.full((30, 8), 0.5), generator=torch.Generator().manual_seed(0))
@@ -237,7 +237,7 @@ def test_callbacks_see_batches_and_epochs_and_can_stop():
     ]
     assert len(result.history) == 2
     record = result.history[-1]
-    rate = el.train.SMALL_RBM_LEARNING_RATE  # fit's starting rate for a small RBM
+    rate = el.training.fit.SMALL_RBM_LEARNING_RATE  # fit's starting rate for a small RBM
     assert record["learning_rate"] == pytest.approx(rate * (1 - 1 / 5))  # linear decay over 5 epochs
     assert record["mean_field_iterations"] == 1 and record["free_energy_gap"] is None
 
@@ -381,7 +381,7 @@ def test_fit_defaults_follow_the_size_of_the_model(sizes, small):
     if small:
         assert type(negative) is el.ReplicaExchangeSampler
         assert (negative.num_replicas, negative.sweeps, rate) == (2, 2, 0.03)
-        expected = el.functional.base_rate_logits(data, pseudocount=1.0).float()
+        expected = el.model.functional.base_rate_logits(data, pseudocount=1.0).float()
         torch.testing.assert_close(negative.base_bias, expected)  # towards the data's base rates
     else:
         assert type(negative) is el.PersistentSampler and negative.sweeps == 1
@@ -415,7 +415,7 @@ def test_resume_with_more_epochs_goes_on_decaying_from_the_last_rate(tmp_path):
     model, result = small_run(tmp_path, epochs=5, resume=True)
     rates = _rates(result)
     # Epoch 2 ran at r * (1 - 1/2); the rest decays linearly to zero at epoch 5 (mathematics).
-    r = el.train.SMALL_RBM_LEARNING_RATE  # fit's starting rate for the small RBM
+    r = el.training.fit.SMALL_RBM_LEARNING_RATE  # fit's starting rate for the small RBM
     torch.testing.assert_close(rates, [r * k for k in (1, 1 / 2, 3 / 8, 2 / 8, 1 / 8)])
     assert not torch.equal(model.couplings[0].weight, trained)
     # Interrupted at 2 of 4 and resumed with 6: the same rule from epoch 2's rate r * 3/4.

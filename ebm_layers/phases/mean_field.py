@@ -10,11 +10,11 @@ from dataclasses import dataclass, replace
 import torch
 from torch import Tensor, nn
 
-from . import functional as F
-from ._checks import check_batch, check_index, check_model, check_positive_real, check_real, check_size
-from .graph import UpdateSchedule
-from .model import EnergyModel
-from .statistics import Statistics
+from .._checks import check_batch, check_index, check_model, check_positive_real, check_real, check_size
+from ..model import functional as F
+from ..model.energy_model import EnergyModel
+from ..model.graph import UpdateSchedule
+from ..model.statistics import Statistics
 
 __all__ = ["MeanField"]
 

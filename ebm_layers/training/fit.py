@@ -23,18 +23,18 @@ from torch import Tensor
 from torch.utils.data import DataLoader, DistributedSampler, RandomSampler
 from tqdm.auto import tqdm
 
-from ._checks import check_count, check_data, check_model, check_positive_real, check_size
-from ._random import resolve_generator
+from .._checks import check_count, check_data, check_model, check_positive_real, check_size
+from .._random import resolve_generator
+from ..evaluation.metrics import free_energy_gap
+from ..model.energy_model import EnergyModel
+from ..model.graph import is_chain
+from ..phases.fast_weights import FastWeightsSampler
+from ..phases.gibbs import DataParticles, PersistentSampler
+from ..phases.mean_field import MeanField
+from ..phases.replica_exchange import ReplicaExchangeSampler
 from .distributed import current_world, rank_generator, rank_states, wrap_distributed
-from .fast_weights import FastWeightsSampler
-from .graph import is_chain
-from .inference import MeanField
-from .metrics import free_energy_gap
-from .model import EnergyModel
 from .objective import TwoPhaseObjective
 from .pretraining import DEFAULT_PRETRAIN_EPOCHS, pretrain
-from .sampling import DataParticles, PersistentSampler
-from .tempering import ReplicaExchangeSampler
 
 __all__ = ["FitResult", "FitState", "default_optimizer", "fit", "load_checkpoint", "save_checkpoint"]
 

@@ -9,13 +9,13 @@ from dataclasses import dataclass, field
 import torch
 from torch import Tensor, nn
 
-from ._checks import check_batch, check_model, check_real
+from .._checks import check_batch, check_model, check_real
+from ..model.energy_model import EnergyModel
+from ..model.statistics import Statistics
+from ..phases.exact import ExactStatistics
+from ..phases.gibbs import DataParticles, PersistentSampler
+from ..phases.mean_field import MeanField
 from .distributed import on_any_rank, rank_average
-from .enumeration import ExactStatistics
-from .inference import MeanField
-from .model import EnergyModel
-from .sampling import DataParticles, PersistentSampler
-from .statistics import Statistics
 
 __all__ = ["Monitors", "TwoPhaseObjective", "weight_decay_groups"]
 

@@ -6,10 +6,10 @@ from __future__ import annotations
 import torch
 from torch import Tensor
 
-from . import functional as F
-from ._checks import check_batch, check_size
-from .model import EnergyModel
-from .sampling import PersistentSampler, gibbs_sweep
+from .._checks import check_batch, check_size
+from ..model import functional as F
+from ..model.energy_model import EnergyModel
+from .gibbs import PersistentSampler, gibbs_sweep
 
 __all__ = ["ReplicaExchangeSampler"]
 

@@ -12,9 +12,9 @@ import torch
 from torch import Tensor
 from tqdm.auto import tqdm
 
-from ._checks import check_batch, check_size
-from ._random import resolve_generator
-from .sampling import PersistentSampler
+from .._checks import check_batch, check_size
+from .._random import resolve_generator
+from ..phases.gibbs import PersistentSampler
 
 __all__ = [
     "ModeOccupancy",

@@ -13,13 +13,13 @@ from torch.autograd.function import once_differentiable
 from torch.nn.functional import softplus
 from tqdm.auto import tqdm
 
-from . import functional as F
-from ._checks import check_batch, check_model, check_size
-from ._random import resolve_generator
-from .enumeration import MAX_STATES, exact_moments
-from .inference import MeanField
-from .model import EnergyModel
-from .sampling import gibbs_sweep
+from .._checks import check_batch, check_model, check_size
+from .._random import resolve_generator
+from ..model import functional as F
+from ..model.energy_model import EnergyModel
+from ..phases.exact import MAX_STATES, exact_moments
+from ..phases.gibbs import gibbs_sweep
+from ..phases.mean_field import MeanField
 
 __all__ = [
     "Estimate",

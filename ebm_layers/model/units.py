@@ -5,8 +5,8 @@ from __future__ import annotations
 import torch
 from torch import Tensor, nn
 
+from .._checks import check_size
 from . import functional as F
-from ._checks import check_size
 
 __all__ = ["BinaryLayer"]
 

@@ -6,9 +6,9 @@ import torch
 from torch import Tensor, nn
 from torch.nn.utils import parametrize
 
+from .._checks import check_index, check_size
+from .._random import resolve_generator
 from . import functional as F
-from ._checks import check_index, check_size
-from ._random import resolve_generator
 
 __all__ = ["DenseCoupling", "LateralCoupling"]
 

@@ -6,10 +6,10 @@ from __future__ import annotations
 import torch
 from torch import Tensor
 
-from ._checks import check_real
-from .model import EnergyModel
-from .sampling import PersistentSampler
-from .statistics import Statistics
+from .._checks import check_real
+from ..model.energy_model import EnergyModel
+from ..model.statistics import Statistics
+from .gibbs import PersistentSampler
 
 __all__ = ["FastWeightsSampler"]
 

@@ -16,13 +16,13 @@ import torch
 from torch import Tensor
 from torch.nn.functional import softplus
 
-from . import functional
-from ._checks import check_batch, check_binary_batch, check_data, check_model, check_real, check_size
-from ._random import resolve_generator
-from .enumeration import MAX_STATES, binary_codes
-from .graph import smallest_cover
-from .inference import MeanField
-from .model import EnergyModel
+from .._checks import check_batch, check_binary_batch, check_data, check_model, check_real, check_size
+from .._random import resolve_generator
+from ..model import functional
+from ..model.energy_model import EnergyModel
+from ..model.graph import smallest_cover
+from ..phases.exact import MAX_STATES, binary_codes
+from ..phases.mean_field import MeanField
 from .partition import (
     Estimate,
     ais_log_partition,

@@ -13,11 +13,11 @@ import math
 import torch
 from torch import Tensor, nn
 
-from . import functional as F
-from ._checks import check_model, check_size
-from .graph import smallest_cover
-from .model import EnergyModel
-from .statistics import Statistics
+from .._checks import check_model, check_size
+from ..model import functional as F
+from ..model.energy_model import EnergyModel
+from ..model.graph import smallest_cover
+from ..model.statistics import Statistics
 
 __all__ = ["MAX_STATES", "ExactStatistics", "enumeration_cover", "exact_moments"]
 

@@ -8,15 +8,15 @@ import torch
 from torch import Tensor, nn
 from torch.nn.utils import parametrize
 
-from . import functional as F
-from ._checks import check_count, check_data, check_model
-from ._random import resolve_generator
-from .graph import is_chain
-from .inference import MeanField
-from .model import EnergyModel, rbm
+from .._checks import check_count, check_data, check_model
+from .._random import resolve_generator
+from ..model import functional as F
+from ..model.energy_model import EnergyModel, rbm
+from ..model.graph import is_chain
+from ..phases.mean_field import MeanField
 
 if TYPE_CHECKING:
-    from .train import FitResult
+    from .fit import FitResult
 
 __all__ = ["pretrain"]
 
@@ -74,7 +74,7 @@ def pretrain(
         >>> len(results), len(results[0].history)
         (2, 2)
     """
-    from .train import default_optimizer, fit  # fit pretrains by default: imported here (cycle)
+    from .fit import default_optimizer, fit  # fit pretrains by default: imported here (cycle)
 
     check_model(model)
     if not is_chain(len(model.layers), model.edges):

@@ -10,11 +10,11 @@ import torch
 from torch import Tensor, nn
 from tqdm.auto import tqdm
 
-from . import functional as F
-from ._checks import check_batch, check_count, check_example_index, check_model, check_size
-from ._random import resolve_generator, track_generator_state
-from .model import EnergyModel
-from .statistics import Statistics
+from .._checks import check_batch, check_count, check_example_index, check_model, check_size
+from .._random import resolve_generator, track_generator_state
+from ..model import functional as F
+from ..model.energy_model import EnergyModel
+from ..model.statistics import Statistics
 
 __all__ = ["DataParticles", "PersistentSampler", "gibbs_sweep"]
 

@@ -7,12 +7,12 @@ from collections.abc import Collection, Mapping, Sequence
 import torch
 from torch import Tensor, nn
 
+from .._checks import check_batch, check_index, check_positive_real, check_size, check_states
+from .._random import resolve_generator
 from . import functional as F
-from ._checks import check_batch, check_index, check_positive_real, check_size, check_states
-from ._random import resolve_generator
 from .couplings import DenseCoupling, LateralCoupling
 from .graph import UpdateSchedule, check_schedule, colour_classes, first_coupled_pair
-from .layers import BinaryLayer
+from .units import BinaryLayer
 
 __all__ = ["EnergyModel", "dbm", "rbm"]
 
