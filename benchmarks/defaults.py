@@ -161,7 +161,7 @@ class EnumeratedStatistics(el.ExactStatistics):
         self.states = all_states(model.sizes[self.side])
 
     @torch.no_grad()
-    def statistics(self) -> Statistics:
+    def statistics(self, v: torch.Tensor | None = None, **kwargs) -> Statistics:
         biases = [b.detach() for b in self.model.biases()]
         weight = self.model.weights()[0].detach()
         weight = weight if self.side == 1 else weight.T  # (other side, enumerated side)
@@ -170,9 +170,8 @@ class EnumeratedStatistics(el.ExactStatistics):
         p = torch.softmax(log_weights, 0)
         q = torch.sigmoid(logits)
         enumerated, other, pairs = p @ self.states, p @ q, (q * p[:, None]).T @ self.states
-        if self.side == 1:
-            return Statistics([other, enumerated], [pairs])
-        return Statistics([enumerated, other], [pairs.T])
+        visible, hidden, pair = (other, enumerated, pairs) if self.side == 1 else (enumerated, other, pairs.T)
+        return Statistics({"layers.0.bias": visible, "layers.1.bias": hidden, "couplings.0.weight": pair})
 
 
 Phase = Callable[[el.EnergyModel, torch.Generator, torch.Tensor], torch.nn.Module]

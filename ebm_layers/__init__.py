@@ -35,11 +35,12 @@ from .evaluation.partition import (
     reverse_ais_log_likelihood,
 )
 from .features import ConcatenatedLayers, FeatureExtractor, feedforward_network
-from .model.couplings import DenseCoupling, LateralCoupling
+from .model.couplings import Coupling, DenseCoupling, LateralCoupling
 from .model.energy_model import EnergyModel, dbm, rbm
 from .model.graph import UpdateSchedule
 from .model.statistics import Statistics
-from .model.units import BinaryLayer
+from .model.units import BinaryLayer, UnitLayer
+from .phases.contrastive_divergence import ContrastiveDivergence
 from .phases.exact import ExactStatistics
 from .phases.fast_weights import FastWeightsSampler
 from .phases.gibbs import DataParticles, PersistentSampler
@@ -47,13 +48,15 @@ from .phases.mean_field import MeanField
 from .phases.replica_exchange import ReplicaExchangeSampler
 from .training.distributed import rank_generator, rank_states, wrap_distributed
 from .training.fit import FitResult, FitState, default_optimizer, fit, load_checkpoint, save_checkpoint
-from .training.objective import Monitors, TwoPhaseObjective, weight_decay_groups
+from .training.objective import Monitors, Phase, TwoPhaseObjective, weight_decay_groups
 from .training.pretraining import pretrain
 from .viz import image_grid, save_image_grid, save_training_plot
 
 __all__ = [
     "BinaryLayer",
     "ConcatenatedLayers",
+    "ContrastiveDivergence",
+    "Coupling",
     "DataParticles",
     "DenseCoupling",
     "EnergyModel",
@@ -71,10 +74,12 @@ __all__ = [
     "ModeTracker",
     "Monitors",
     "PersistentSampler",
+    "Phase",
     "ReplicaExchangeSampler",
     "SplitMetrics",
     "Statistics",
     "TwoPhaseObjective",
+    "UnitLayer",
     "UpdateSchedule",
     "ais_log_partition",
     "annealing_schedule",

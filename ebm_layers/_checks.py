@@ -95,8 +95,10 @@ def check_batch(
     *,
     dtype: torch.dtype | None = None,
     batch: int | None = None,
+    support: tuple[float, float] | None = (0.0, 1.0),
 ) -> Tensor:
-    """Check a batch of states or data: a ``(B, width)`` tensor, ``B > 0``, finite, in [0, 1].
+    """Check a batch of states or data: a ``(B, width)`` tensor, ``B > 0``, finite, within
+    ``support`` (``(low, high)``, default [0, 1]; ``None``: any finite value).
 
     Binary states and Bernoulli means are both accepted. Binary data kept as ``bool`` or an
     integer dtype (``uint8``...) is cast to ``dtype`` (default: torch's default dtype) and
@@ -124,24 +126,32 @@ def check_batch(
         raise ValueError(f"{name} has batch size {x.shape[0]}, expected {batch} like the others")
     values = x.detach()
     low, high = (float(m) for m in values.aminmax())  # one pass; NaN propagates into both
-    if not (0.0 <= low and high <= 1.0):
+    bottom, top = (-math.inf, math.inf) if support is None else support
+    if not (bottom <= low and high <= top and math.isfinite(low) and math.isfinite(high)):
         finite = torch.isfinite(values)
         if not bool(finite.all()):
             raise ValueError(f"{name} holds {int((~finite).sum())} non-finite values (NaN or Inf)")
-        raise ValueError(
-            f"{name} must lie in [0, 1] (binary states or Bernoulli means), got values from {low} to {high}"
-        )
+        what = " (binary states or Bernoulli means)" if support == (0.0, 1.0) else ""
+        raise ValueError(f"{name} must lie in [{bottom:g}, {top:g}]{what}, got values from {low} to {high}")
     return x
 
 
-def check_data(name: str, x: object, width: int, *, dtype: torch.dtype) -> Tensor:
+def check_data(
+    name: str,
+    x: object,
+    width: int,
+    *,
+    dtype: torch.dtype,
+    batch: int | None = None,
+    support: tuple[float, float] | None = (0.0, 1.0),
+) -> Tensor:
     """:func:`check_batch` for the conveniences (``fit``, ``pretrain``, ``evaluate``): also numpy
     arrays (anything with ``__array__``) and floating data of another precision, cast to ``dtype``."""
     if not isinstance(x, Tensor) and hasattr(x, "__array__"):
         x = torch.as_tensor(x)
     if isinstance(x, Tensor) and x.is_floating_point() and x.dtype != dtype:
         x = x.to(dtype)
-    return check_batch(name, x, width, dtype=dtype)
+    return check_batch(name, x, width, dtype=dtype, batch=batch, support=support)
 
 
 def check_binary_batch(name: str, x: object, width: int, *, dtype: torch.dtype | None = None) -> Tensor:
@@ -156,8 +166,15 @@ def check_binary_batch(name: str, x: object, width: int, *, dtype: torch.dtype |
     return x
 
 
-def check_states(name: str, states: object, sizes: Sequence[int], dtype: torch.dtype) -> list[Tensor]:
-    """Check one ``(B, n_i)`` tensor per layer, all with the same batch size; return them as a list."""
+def check_states(
+    name: str,
+    states: object,
+    sizes: Sequence[int],
+    dtype: torch.dtype,
+    supports: Sequence[tuple[float, float] | None] | None = None,
+) -> list[Tensor]:
+    """Check one ``(B, n_i)`` tensor per layer, all with the same batch size, each within its
+    layer's support (default [0, 1]); return them as a list."""
     if isinstance(states, Tensor) or not isinstance(states, Sequence):
         raise TypeError(
             f"{name} must be a list of {len(sizes)} tensors (one per layer), got {type(states).__name__}"
@@ -166,7 +183,8 @@ def check_states(name: str, states: object, sizes: Sequence[int], dtype: torch.d
         raise ValueError(f"{name} must hold {len(sizes)} tensors (one per layer), got {len(states)}")
     batch, checked = None, []
     for i, (x, width) in enumerate(zip(states, sizes)):
-        checked.append(check_batch(f"{name}[{i}]", x, width, dtype=dtype, batch=batch))
+        support = (0.0, 1.0) if supports is None else supports[i]
+        checked.append(check_batch(f"{name}[{i}]", x, width, dtype=dtype, batch=batch, support=support))
         batch = x.shape[0]
     return checked
 

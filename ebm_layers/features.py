@@ -17,7 +17,9 @@ import torch
 from torch import Tensor, nn
 
 from ._checks import check_index, check_model
+from .model.couplings import DenseCoupling, LateralCoupling
 from .model.energy_model import EnergyModel
+from .model.units import BinaryLayer
 from .phases.mean_field import MeanField
 
 __all__ = ["ConcatenatedLayers", "FeatureExtractor", "feedforward_network"]
@@ -201,12 +203,18 @@ def _chain_matrices(model: EnergyModel) -> list[Tensor]:
     consecutive layers (either orientation, any order in ``couplings``) and no other coupling.
     """
     why = (
-        "feedforward_network needs a chain (one dense coupling between each pair of consecutive "
-        "layers and nothing else, as built by dbm() or rbm()), because a single bottom-up pass "
+        "feedforward_network needs a chain of binary layers (one dense coupling between each pair of "
+        "consecutive layers and nothing else, as built by dbm() or rbm()), because a single bottom-up pass "
         "computes each layer from the one below only; {}. FeatureExtractor handles any graph"
     )
+    for i, layer in enumerate(model.layers):
+        if not isinstance(layer, BinaryLayer):
+            raise ValueError(why.format(f"layers[{i}] is a {type(layer).__name__}, not binary units"))
     matrices: dict[int, Tensor] = {}
-    for k, ((a, b), weight) in enumerate(zip(model.edges, model.weights())):
+    for k, ((a, b), coupling) in enumerate(zip(model.edges, model.couplings)):
+        if not isinstance(coupling, DenseCoupling | LateralCoupling):
+            raise ValueError(why.format(f"couplings[{k}] is a {type(coupling).__name__}, not a dense weight"))
+        weight = coupling.weight
         if a == b:
             raise ValueError(why.format(f"couplings[{k}] is a lateral coupling within layer {a}"))
         if abs(a - b) != 1:

@@ -64,14 +64,14 @@ MODEL_CASES = [
         "states[1] has batch size 3",
     ),
     (
-        "conditional_logits: unknown layer",
-        lambda m: m.conditional_logits(_states(GOOD), 2),
+        "conditional_input: unknown layer",
+        lambda m: m.conditional_input(_states(GOOD), 2),
         ValueError,
         "layer",
     ),
     (
-        "conditional_logits: layer not an int",
-        lambda m: m.conditional_logits(_states(GOOD), "1"),
+        "conditional_input: layer not an int",
+        lambda m: m.conditional_input(_states(GOOD), "1"),
         TypeError,
         "layer",
     ),
@@ -179,7 +179,7 @@ CONSTRUCTION_CASES = [
         "EnergyModel layer of the wrong type",
         lambda: el.EnergyModel([el.BinaryLayer(2), torch.nn.Linear(2, 2)]),
         TypeError,
-        "layers[1] must be a BinaryLayer",
+        "layers[1] must be a UnitLayer",
     ),
     (
         "EnergyModel unknown layer index",

@@ -156,7 +156,9 @@ def test_offsets_are_running_means_of_data_and_model_means():
     assert all(bool((c == 0.5).all()) for c in objective.offsets)
     data, fantasy = objective.positive.statistics(v), objective.negative.statistics()
     objective(v)
-    for c, d, m in zip(objective.offsets, data.means, fantasy.means):
+    assert len(objective.offsets) == len(model.layers)
+    for i, c in enumerate(objective.offsets):
+        d, m = data[f"layers.{i}.bias"], fantasy[f"layers.{i}.bias"]
         torch.testing.assert_close(c, 0.9 * 0.5 + 0.1 * (d + m) / 2)
     names = set(objective.state_dict())
     assert {"offset_0", "offset_1"} <= names

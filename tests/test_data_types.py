@@ -90,7 +90,7 @@ def test_module_calls_take_binary_data_as_kept(kind):
     rbm = el.rbm(6, 4, generator=torch.Generator().manual_seed(1))
     assert torch.equal(rbm.free_energy(data), rbm.free_energy(DATA))
     particles = el.DataParticles(rbm, num_examples=24, generator=torch.Generator().manual_seed(6))
-    assert particles.statistics(data, torch.arange(24)).means[0].dtype == torch.float32
+    assert particles.statistics(data, torch.arange(24))["layers.0.bias"].dtype == torch.float32
 
 
 def test_module_calls_keep_torchs_dtype_convention_for_floats():

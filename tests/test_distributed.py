@@ -108,7 +108,7 @@ def equivalence_worker(rank: int, folder: str) -> None:
 
 def reference_step(objective, sampler, shards: torch.Tensor, particles: list[torch.Tensor]) -> None:
     """One process: the data phase on ``shards``, the model phase from the given ``particles``."""
-    sampler.statistics = lambda: Statistics.from_states(particles, objective.model.edges)
+    sampler.statistics = lambda v=None, **kwargs: objective.model.statistics(particles)
     objective(shards).backward()
 
 
@@ -218,10 +218,16 @@ def diverging_worker(rank: int, folder: str) -> None:
     if rank == 1:  # this rank's model statistics turn non-finite at the third step
         honest, calls = sampler.statistics, []
 
-        def poisoned() -> Statistics:
+        def poisoned(v=None, **kwargs) -> Statistics:
             calls.append(1)
-            stats = honest()
-            return Statistics([m * float("nan") if len(calls) >= 3 else m for m in stats.means], stats.pairs)
+            stats = honest(v, **kwargs)
+            # From the third call on, the layers' statistics (the means) turn NaN.
+            return Statistics(
+                {
+                    name: s * float("nan") if len(calls) >= 3 and name.startswith("layers.") else s
+                    for name, s in stats.items()
+                }
+            )
 
         sampler.statistics = poisoned
     wrapped = el.wrap_distributed(objective)

@@ -156,14 +156,31 @@ def brute_force(model: el.EnergyModel, lateral_factor: float = 1.0) -> Reference
     return Reference(x, list(x.split(model.sizes, dim=1)), energy, log_z, torch.exp(-energy - log_z))
 
 
+def bias_names(model: el.EnergyModel) -> list[str]:
+    """The statistics keys of the layers' biases, layer 0 first."""
+    return [f"layers.{i}.bias" for i in range(len(model.layers))]
+
+
+def coupling_names(model: el.EnergyModel) -> list[str]:
+    """The statistics key of every coupling's free tensor, in coupling order (a lateral coupling's
+    is its parametrize original)."""
+    return [
+        f"couplings.{k}.parametrizations.weight.original" if c.a == c.b else f"couplings.{k}.weight"
+        for k, c in enumerate(model.couplings)
+    ]
+
+
 def assert_exact_statistics(stats: el.Statistics, model: el.EnergyModel, ref: Reference) -> None:
     """Exact enumeration (mathematics): ``stats`` hold E[x_i] per layer and E[x_a^T x_b] per coupling.
 
-    A lateral coupling's (n, n) average E[x^T x] keeps its diagonal E[x_i].
+    A lateral coupling's statistic is the strict upper triangle of its (n, n) average E[x^T x]
+    (the entries i < j of its free matrix); the diagonal E[x_i] is the layer's own mean.
     """
-    assert_all_close(stats.means, [ref.prob @ x for x in ref.states])
+    assert sorted(stats) == sorted(name for name, _ in model.named_parameters())
+    assert_all_close([stats[name] for name in bias_names(model)], [ref.prob @ x for x in ref.states])
     pairs = [ref.states[c.a].T @ (ref.prob[:, None] * ref.states[c.b]) for c in model.couplings]
-    assert_all_close(stats.pairs, pairs)
+    pairs = [p.triu(1) if c.a == c.b else p for p, c in zip(pairs, model.couplings)]
+    assert_all_close([stats[name] for name in coupling_names(model)], pairs)
 
 
 def flip_conditionals(ref: Reference) -> Tensor:
@@ -273,13 +290,14 @@ def test_conditionals_match_joint_probability_ratio(shape, data):
     # exact enumeration (mathematics): the joint-probability ratio at every state and unit.
     expected = flip_conditionals(ref).split(model.sizes, dim=1)
     for i in range(len(model.layers)):
-        logits = model.conditional_logits(ref.states, i)
+        logits = model.layers[i].bias + model.conditional_input(ref.states, i)
         assert_close(torch.sigmoid(logits), expected[i])
+        assert_close(model.conditional_mean(ref.states, i), expected[i])
         if (i, i) not in model.edges:
             # Without lateral couplings a layer's units are independent given the other layers.
             flipped = list(ref.states)
             flipped[i] = 1.0 - flipped[i]
-            assert torch.equal(model.conditional_logits(flipped, i), logits)
+            assert torch.equal(model.layers[i].bias + model.conditional_input(flipped, i), logits)
 
 
 @random_models(SHAPES)
@@ -295,8 +313,9 @@ def test_log_partition_gradient_matches_autograd_of_enumeration(shape, data):
     # Mathematics: d log Z / d theta = E[-dE/d theta]: E[x] for a bias, E[x_a^T x_b] for a dense
     # weight, E[x_i x_j] for a free lateral entry i < j (it enters -E once, as L_ij x_i x_j).
     stats = el.ExactStatistics(model).statistics()
-    pairs = [p.triu(1) if c.a == c.b else p for p, c in zip(stats.pairs, model.couplings)]
-    assert_all_close(list(got), stats.means + pairs)
+    names = bias_names(model) + coupling_names(model)
+    assert names == [name for name, _ in model.named_parameters()]
+    assert_all_close(list(got), [stats[name] for name in names])
 
 
 @random_models(SHAPES)
@@ -317,9 +336,12 @@ def test_float32_model_enumerates_in_float64(shape, data):
 
 
 def exact_results(model: el.EnergyModel) -> list[Tensor]:
-    """log Z, then the exact statistics (means, then pairs), as one flat list."""
+    """log Z, then the exact statistics (biases, then couplings), as one flat list."""
     stats = el.ExactStatistics(model).statistics()
-    return [el.exact_log_partition(model), *stats.means, *stats.pairs]
+    return [
+        el.exact_log_partition(model),
+        *(stats[name] for name in bias_names(model) + coupling_names(model)),
+    ]
 
 
 @random_models(SHAPES)
@@ -345,13 +367,13 @@ def test_chunked_enumeration_with_large_weights(shape, sizes):
     with pytest.MonkeyPatch.context() as patch:
         patch.setattr(enumeration, "_CHUNK_ELEMENTS", 8)
         chunks = []
-        per_chunk = enumeration.F.marginal_free_energy  # the enumeration calls it once per chunk
+        per_chunk = el.EnergyModel.summed_free_energy  # the enumeration calls it once per chunk
 
-        def counted(*args):
+        def counted(*args, **kwargs):
             chunks.append(args)
-            return per_chunk(*args)
+            return per_chunk(*args, **kwargs)
 
-        patch.setattr(enumeration.F, "marginal_free_energy", counted)
+        patch.setattr(el.EnergyModel, "summed_free_energy", counted)
         log_z = el.exact_log_partition(model)
         stats = el.ExactStatistics(model).statistics()
     # The patch took effect: two enumerations of at least 2^6 cover states, one state per chunk.
@@ -397,7 +419,8 @@ def test_uncoupled_units_give_softplus_log_partition(data):
     bias = torch.cat([layer.bias for layer in model.layers])
     # Mathematics: independent units, Z = prod_i (1 + exp(b_i)), p(x_i = 1) = sigmoid(b_i).
     assert_close(el.exact_log_partition(model), softplus(bias).sum())
-    assert_close(torch.cat(el.ExactStatistics(model).statistics().means), torch.sigmoid(bias))
+    stats = el.ExactStatistics(model).statistics()
+    assert_close(torch.cat([stats[name] for name in bias_names(model)]), torch.sigmoid(bias))
 
 
 def test_negative_controls_have_power():
@@ -429,4 +452,4 @@ def test_negative_controls_have_power():
     # negative control: the own-state independence checked for lateral-free layers fails here.
     flipped = list(ref.states)
     flipped[1] = 1.0 - flipped[1]
-    assert not torch.equal(model.conditional_logits(flipped, 1), model.conditional_logits(ref.states, 1))
+    assert not torch.equal(model.conditional_input(flipped, 1), model.conditional_input(ref.states, 1))

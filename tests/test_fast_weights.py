@@ -35,8 +35,23 @@ def setup(seed: int = 0, **options):
     return model, sampler, data
 
 
-def parameters(model) -> list[torch.Tensor]:
-    return [p.detach().clone() for p in (*model.biases(), *model.weights())]
+LATERAL = "couplings.1.parametrizations.weight.original"  # the free matrix of setup()'s lateral coupling
+
+
+def parameters(model) -> dict[str, torch.Tensor]:
+    return {name: p.detach().clone() for name, p in model.named_parameters()}
+
+
+def fast_index(model, name: str) -> int:
+    """``j`` of the buffer ``fast_<j>`` that holds the fast weight of parameter ``name``."""
+    return [n for n, _ in model.named_parameters()].index(name)
+
+
+def fast_of(sampler) -> dict[str, torch.Tensor]:
+    """The fast weight of every model parameter, keyed by the parameter's name."""
+    return {
+        name: getattr(sampler, f"fast_{j}") for j, (name, _) in enumerate(sampler.model.named_parameters())
+    }
 
 
 @pytest.mark.parametrize(
@@ -51,19 +66,29 @@ def test_fast_weights_take_the_steps_the_optimizer_applied_and_decay(optimizer):
     model, sampler, data = setup(fast_decay=0.5)
     objective = el.TwoPhaseObjective(model, el.MeanField(model, tol=1e-12, max_iter=500), sampler)
     optimizer = optimizer(model.parameters())
-    expected = [torch.zeros_like(p) for p in parameters(model)]
+    expected = {name: torch.zeros_like(p) for name, p in parameters(model).items()}
+    # The lateral coupling's symmetric weight as the chains see it, followed on its own.
+    expected_lateral = torch.zeros_like(model.couplings[1].weight.detach())
     for _ in range(4):
         before = parameters(model)
+        before_lateral = model.couplings[1].weight.detach().clone()
         objective(data).backward()
-        fast = sampler.fast_biases + sampler.fast_weights
-        for f, e in zip(fast, expected):  # the fast weights seen by this step's sweep
-            torch.testing.assert_close(f, e)
+        fast = fast_of(sampler)
+        assert fast.keys() == expected.keys()
+        for name, e in expected.items():  # the fast weights seen by this step's sweep
+            torch.testing.assert_close(fast[name], e)
+        # The fast change of the symmetric lateral weight: the free matrix's strict upper triangle,
+        # mirrored; it follows the steps of the symmetric weight.
+        upper = fast[LATERAL].triu(1)
+        lateral = upper + upper.mT
+        torch.testing.assert_close(lateral, expected_lateral)
         optimizer.step()
         optimizer.zero_grad()
-        applied = [after - b for after, b in zip(parameters(model), before)]
-        expected = [0.5 * e + a for e, a in zip(expected, applied)]
-    assert float(expected[2].abs().max()) > 0  # the check is not vacuous
-    lateral = sampler.fast_weights[1]
+        applied = {name: after - before[name] for name, after in parameters(model).items()}
+        expected = {name: 0.5 * e + applied[name] for name, e in expected.items()}
+        expected_lateral = 0.5 * expected_lateral + (model.couplings[1].weight.detach() - before_lateral)
+    assert float(expected["couplings.0.weight"].abs().max()) > 0  # the check is not vacuous
+    assert float(lateral.abs().max()) > 0
     torch.testing.assert_close(lateral, lateral.mT)  # a lateral fast weight stays symmetric ...
     assert float(lateral.diagonal().abs().max()) == 0.0  # ... with a zero diagonal
 
@@ -84,8 +109,9 @@ def test_fast_steps_under_adam_are_the_size_of_the_slow_steps():
         optimizer.zero_grad()
     objective(data)
     slow_step = model.couplings[0].weight.detach() - before
-    torch.testing.assert_close(sampler.fast_weights[0], slow_step)
-    assert 0.5 < float(sampler.fast_weights[0].square().mean().sqrt()) / 0.01 < 1.5
+    fast = fast_of(sampler)["couplings.0.weight"]
+    torch.testing.assert_close(fast, slow_step)
+    assert 0.5 < float(fast.square().mean().sqrt()) / 0.01 < 1.5
 
 
 def test_a_reset_or_a_first_call_takes_no_fast_step():
@@ -93,16 +119,18 @@ def test_a_reset_or_a_first_call_takes_no_fast_step():
     with torch.no_grad():  # edited before the first call: not a training step
         model.couplings[0].weight.add_(1.0)
     sampler.statistics()
-    assert all(float(f.abs().sum()) == 0 for f in sampler.fast_biases + sampler.fast_weights)
+    assert len(fast_of(sampler)) == 4
+    assert all(float(f.abs().sum()) == 0 for f in fast_of(sampler).values())
     with torch.no_grad():
         model.couplings[0].weight.add_(1.0)
     sampler.reset_fast_weights()
     sampler.statistics()
-    assert float(sampler.fast_weights[0].abs().sum()) == 0
+    assert float(fast_of(sampler)["couplings.0.weight"].abs().sum()) == 0
     with torch.no_grad():  # negative control: a change between two calls is a step
         model.couplings[0].weight.add_(1.0)
     sampler.statistics()
-    torch.testing.assert_close(sampler.fast_weights[0], torch.ones_like(sampler.fast_weights[0]))
+    fast = fast_of(sampler)["couplings.0.weight"]
+    torch.testing.assert_close(fast, torch.ones_like(fast))
 
 
 def test_with_zero_fast_weights_the_chains_are_the_plain_chains():
@@ -113,7 +141,7 @@ def test_with_zero_fast_weights_the_chains_are_the_plain_chains():
             assert torch.equal(ours, theirs)
     # Negative control: non-zero fast weights change the draws.
     with torch.no_grad():
-        sampler.fast_weight_0.fill_(3.0)
+        getattr(sampler, f"fast_{fast_index(model, 'couplings.0.weight')}").fill_(3.0)
     assert not all(torch.equal(a, b) for a, b in zip(sampler(), plain()))
 
 
@@ -126,7 +154,8 @@ def test_fast_weights_survive_a_state_dict_round_trip():
         optimizer.step()
     sampler.statistics()
     state = {k: v.clone() for k, v in sampler.state_dict().items()}
-    assert "fast_weight_0" in state and float(state["fast_weight_0"].abs().sum()) > 0
+    key = f"fast_{fast_index(model, 'couplings.0.weight')}"
+    assert key in state and float(state[key].abs().sum()) > 0
     after = [x.clone() for x in sampler()]
     _, fresh, _ = setup()
     fresh.load_state_dict(state)
@@ -145,16 +174,24 @@ def test_a_refused_step_moves_nothing_and_the_fast_weights_only_decay(monkeypatc
     monkeypatch.setattr(
         el.PersistentSampler,
         "statistics",
-        lambda self: Statistics([m * float("nan") for m in honest(self).means], []),
+        # The layers' statistics (the means) turned NaN.
+        lambda self, v=None, **kwargs: Statistics(
+            {
+                name: s * float("nan") if name.startswith("layers.") else s
+                for name, s in honest(self, v, **kwargs).items()
+            }
+        ),
     )
     with pytest.raises(FloatingPointError):
         objective(data)
     monkeypatch.undo()
-    before = [f.clone() for f in sampler.fast_biases + sampler.fast_weights]
-    assert float(before[2].abs().sum()) > 0
+    before = {name: f.clone() for name, f in fast_of(sampler).items()}
+    assert float(before["couplings.0.weight"].abs().sum()) > 0
     objective(data)  # the refused step applied nothing: no new fast step, only the decay
-    for after, b in zip(sampler.fast_biases + sampler.fast_weights, before):
-        torch.testing.assert_close(after, 0.5 * b)
+    after = fast_of(sampler)
+    assert after.keys() == before.keys()
+    for name, b in before.items():
+        torch.testing.assert_close(after[name], 0.5 * b)
 
 
 @pytest.mark.parametrize(

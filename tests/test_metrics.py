@@ -19,7 +19,6 @@ from torch import Tensor
 import ebm_layers as el
 from ebm_layers.evaluation import metrics
 from ebm_layers.evaluation.partition import ais_log_partition
-from ebm_layers.model import functional
 from tests.conftest import assert_unchanged, snapshot
 from tests.test_exact import (
     CLOSED_FORM,
@@ -166,7 +165,7 @@ def test_bound_check_catches_an_entropy_counted_twice(monkeypatch):
     # log p(v) (exact enumeration, mathematics), so the comparison above would fail. A wrong
     # entropy sign would not be caught this way: it only lowers the values.
     entropy = metrics._entropy
-    monkeypatch.setattr(metrics, "_entropy", lambda mu: 2 * entropy(mu))
+    monkeypatch.setattr(metrics, "_entropy", lambda model, mu: 2 * entropy(model, mu))
     assert (el.log_likelihood(model, v, log_z, method="mean-field").values > log_p).any()
 
 
@@ -199,7 +198,7 @@ def test_importance_estimate_is_unbiased_in_probability(shape, monkeypatch):
     # negative control: p_hat 5% too high is rejected (measured: max |z| 62 and 10) ...
     assert largest_z(1.05 * ratio) > 4
     # ... and so is the estimate with log q(h) left out of the weights (measured: 1084 and 658).
-    monkeypatch.setattr(functional, "bernoulli_log_probability", lambda states, probabilities: 0.0)
+    monkeypatch.setattr(el.BinaryLayer, "log_probability", lambda layer, x, input: 0.0)
     assert largest_z(ratios()) > 4
 
 

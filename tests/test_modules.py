@@ -143,30 +143,35 @@ def test_init_visible_bias_from_data(generator):
     assert not model.layers[1].bias.detach().any()
 
 
-def test_conditional_logits_of_an_uncoupled_layer_are_its_bias():
+def test_conditional_input_of_an_uncoupled_layer_is_zero_and_its_mean_follows_the_bias():
     model = el.EnergyModel([el.BinaryLayer(3), el.BinaryLayer(2)])
     with torch.no_grad():
         model.layers[1].bias.copy_(torch.tensor([0.5, -1.0]))
-    logits = model.conditional_logits([torch.zeros(4, 3), torch.zeros(4, 2)], 1)
-    assert logits.shape == (4, 2) and torch.equal(logits, torch.tensor([[0.5, -1.0]]).expand(4, 2))
+    states = [torch.zeros(4, 3), torch.zeros(4, 2)]
+    input = model.conditional_input(states, 1)
+    assert input.shape == (4, 2) and not input.any()
+    expected = torch.sigmoid(torch.tensor([[0.5, -1.0]])).expand(4, 2)  # mathematics: sigmoid(bias)
+    assert torch.equal(model.conditional_mean(states, 1), expected)
 
 
 @pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
 def test_exact_statistics_in_model_dtype(dtype):
     stats = el.ExactStatistics(el.rbm(5, 3, dtype=dtype)).statistics()
-    assert [m.dtype for m in stats.means + stats.pairs] == [dtype] * 3
-    assert [tuple(m.shape) for m in stats.means] == [(5,), (3,)] and stats.pairs[0].shape == (5, 3)
+    names = ["layers.0.bias", "layers.1.bias", "couplings.0.weight"]
+    assert sorted(stats) == sorted(names)
+    assert [stats[name].dtype for name in names] == [dtype] * 3
+    assert [tuple(stats[name].shape) for name in names] == [(5,), (3,), (5, 3)]
 
 
-def test_coupling_inputs_add_up_to_the_conditional_logits(lateral_model, generator):
+def test_coupling_inputs_add_up_to_the_conditional_input(lateral_model, generator):
     states = [torch.bernoulli(torch.full((6, n), 0.5), generator=generator) for n in lateral_model.sizes]
     for target in range(3):
-        total = lateral_model.layers[target].bias.expand(6, -1)
+        total = torch.zeros(6, lateral_model.sizes[target])
         for coupling in lateral_model.couplings:
             if target in (coupling.a, coupling.b):
                 other = coupling.b if target == coupling.a else coupling.a
                 total = total + coupling.input_to(target, states[other])
-        assert torch.allclose(lateral_model.conditional_logits(states, target), total, atol=1e-6)
+        assert torch.allclose(lateral_model.conditional_input(states, target), total, atol=1e-6)
     dense = lateral_model.couplings[2]  # DenseCoupling(2, 0): weight (2, 5)
     assert torch.equal(dense.input_to(0, states[2]), states[2] @ dense.weight)
     assert torch.equal(dense.input_to(2, states[0]), states[0] @ dense.weight.T)
@@ -194,17 +199,24 @@ def test_statistics_from_states_are_batch_averages(generator):
         torch.rand(7, 3, generator=generator, dtype=torch.float64),
         torch.rand(7, 2, dtype=torch.float64),
     ]
-    edges = [(0, 1), (0, 0)]
+    model = el.EnergyModel(
+        [el.BinaryLayer(3, dtype=torch.float64), el.BinaryLayer(2, dtype=torch.float64)],
+        [el.DenseCoupling(0, 1, 3, 2, dtype=torch.float64), el.LateralCoupling(0, 3, dtype=torch.float64)],
+    )
+    dense, lateral = "couplings.0.weight", "couplings.1.parametrizations.weight.original"
     x0, x1 = (s.numpy() for s in states)
-    stats = el.Statistics.from_states(states, edges)
-    np.testing.assert_allclose(stats.means[1].numpy(), x1.mean(0))
-    np.testing.assert_allclose(stats.pairs[0].numpy(), np.einsum("bi,bj->ij", x0, x1) / 7)
-    np.testing.assert_allclose(stats.pairs[1].numpy(), np.einsum("bi,bj->ij", x0, x0) / 7)
+    stats = model.statistics(states)
+    assert isinstance(stats, el.Statistics)
+    assert sorted(stats) == sorted(name for name, _ in model.named_parameters())
+    np.testing.assert_allclose(stats["layers.1.bias"].numpy(), x1.mean(0))
+    np.testing.assert_allclose(stats[dense].numpy(), np.einsum("bi,bj->ij", x0, x1) / 7)
+    # A lateral statistic is the strict upper triangle of the average x^T x (its free entries).
+    np.testing.assert_allclose(stats[lateral].numpy(), np.triu(np.einsum("bi,bj->ij", x0, x0) / 7, 1))
     weights = torch.softmax(torch.randn(7, generator=generator, dtype=torch.float64), 0)
-    weighted = el.Statistics.from_states(states, edges, weights)
+    weighted = model.statistics(states, weights)
     w = weights.numpy()
-    np.testing.assert_allclose(weighted.means[0].numpy(), w @ x0)
-    np.testing.assert_allclose(weighted.pairs[0].numpy(), np.einsum("b,bi,bj->ij", w, x0, x1))
+    np.testing.assert_allclose(weighted["layers.0.bias"].numpy(), w @ x0)
+    np.testing.assert_allclose(weighted[dense].numpy(), np.einsum("b,bi,bj->ij", w, x0, x1))
 
 
 def test_free_energy_in_another_dtype_stays_differentiable(lateral_model, generator):

@@ -92,9 +92,9 @@ def test_loss_gradient_is_minus_the_statistics_difference_on_a_deep_chain():
     objective = el.TwoPhaseObjective(model, mean_field, exact)
     gradients = objective_gradient(objective, v)
     data, fantasy = mean_field.statistics(v), exact.statistics()
-    expected = [m - d for d, m in zip(data.means, fantasy.means)] + [
-        m - d for d, m in zip(data.pairs, fantasy.pairs)
-    ]
+    names = [name for name, _ in model.named_parameters()]
+    assert sorted(data) == sorted(fantasy) == sorted(names)
+    expected = [fantasy[name] - data[name] for name in names]
     for got, want in zip(gradients, expected):
         torch.testing.assert_close(got, want, rtol=1e-12, atol=1e-14)
 
@@ -241,9 +241,10 @@ def test_data_particle_statistics_are_those_of_the_stored_states():
     index = torch.tensor([4, 0, 2])
     stats = particles.statistics(v, index)
     states = [v, particles.states_1[index].to(F64), particles.states_2[index].to(F64)]
-    expected = el.Statistics.from_states(states, model.edges)
-    for got, want in zip(stats.means + stats.pairs, expected.means + expected.pairs):
-        torch.testing.assert_close(got, want)
+    expected = model.statistics(states)
+    assert stats.keys() == expected.keys()
+    for name, want in expected.items():
+        torch.testing.assert_close(stats[name], want)
     assert particles.states_1.dtype == torch.uint8
 
 
@@ -257,8 +258,10 @@ def test_data_particles_resume_bit_identically():
     second = el.DataParticles(model, num_examples=6, generator=torch.Generator().manual_seed(99))
     second.load_state_dict(saved)
     got = second.statistics(v, index)
-    for a, b in zip(got.pairs, expected.pairs):
-        assert torch.equal(a, b)
+    couplings = [name for name in expected if name.startswith("couplings.")]
+    assert couplings and got.keys() == expected.keys()
+    for name in couplings:
+        assert torch.equal(got[name], expected[name])
 
 
 # ---------------------------------------------------------------------------------------------
@@ -281,7 +284,7 @@ def test_sparsity_adds_cost_times_deviation_to_the_hidden_gradient():
     )
     base = objective_gradient(plain, v)
     got = objective_gradient(sparse, v)
-    hidden_mean = el.MeanField(model).statistics(v).means[1]
+    hidden_mean = el.MeanField(model).statistics(v)["layers.1.bias"]
     running = 0.8 * 0.1 + 0.2 * hidden_mean
     torch.testing.assert_close(sparse.sparsity_mean_1, running)
     deviation = 0.3 * (running - 0.1)
@@ -304,7 +307,7 @@ def test_sparsity_target_lowers_hidden_activity():
             optimizer.zero_grad()
             objective(data[start : start + 10]).backward()
             optimizer.step()
-        return float(el.MeanField(model).statistics(data).means[1].mean())
+        return float(el.MeanField(model).statistics(data)["layers.1.bias"].mean())
 
     plain, sparse = mean_activity(), mean_activity(sparsity_target=0.05, sparsity_cost=1.0)
     assert sparse < plain - 0.2  # measured: 0.11 vs 0.54
@@ -334,11 +337,12 @@ def test_monitors_report_gaps_free_energies_and_iterations():
     data = mean_field.statistics(v)
     objective(v)
     last = objective.last
-    fantasy = el.Statistics.from_states(sampler.particles, model.edges)
-    gap = data.pairs[0] - fantasy.pairs[0]
+    fantasy = model.statistics(sampler.particles)
+    gap = data["couplings.0.weight"] - fantasy["couplings.0.weight"]
     assert last.pair_gaps[0] == pytest.approx(float(gap.pow(2).mean().sqrt()))
     assert last.statistics_gap == pytest.approx(last.pair_gaps[0])
-    assert last.mean_gaps[1] == pytest.approx(float((data.means[1] - fantasy.means[1]).pow(2).mean().sqrt()))
+    hidden_gap = data["layers.1.bias"] - fantasy["layers.1.bias"]
+    assert last.mean_gaps[1] == pytest.approx(float(hidden_gap.pow(2).mean().sqrt()))
     with torch.no_grad():
         data_free_energy, particle_free_energy = (
             model.free_energy(x).mean().item() for x in (v, sampler.particles[0])
@@ -423,8 +427,17 @@ def test_fit_stops_a_diverging_run_with_the_guard():
 def _objective_cases():
     other = el.rbm(6, 3)
     return [
-        (lambda m: el.TwoPhaseObjective(m, positive=el.PersistentSampler(m)), TypeError, "positive must be"),
-        (lambda m: el.TwoPhaseObjective(m, negative=el.MeanField(m)), TypeError, "negative must be"),
+        # Any object with .model and .statistics is a phase; these have neither.
+        (
+            lambda m: el.TwoPhaseObjective(m, positive=3),
+            TypeError,
+            "positive must be a phase: an object with",
+        ),
+        (
+            lambda m: el.TwoPhaseObjective(m, negative=torch.nn.Linear(6, 3)),
+            TypeError,
+            r"negative must be a phase: an object with \.model and \.statistics\(v, \*\*kwargs\), got Linear",
+        ),
         (lambda m: el.TwoPhaseObjective(m, positive=el.MeanField(other)), ValueError, "another model"),
         (lambda m: el.TwoPhaseObjective(m, negative=el.ExactStatistics(other)), ValueError, "another model"),
         (lambda m: el.TwoPhaseObjective("model"), TypeError, "model must be"),

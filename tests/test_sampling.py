@@ -203,8 +203,8 @@ def test_wrong_schedule_fails_the_same_check(name, schedule, through_statistics)
 
 
 def flat(stats: el.Statistics) -> Tensor:
-    """Every mean and pair average of ``stats`` in one vector."""
-    return torch.cat([t.flatten() for t in stats.means + stats.pairs])
+    """Every mean and pair average of ``stats`` in one vector (entries in the order of their keys)."""
+    return torch.cat([stats[name].flatten() for name in sorted(stats)])
 
 
 @pytest.mark.parametrize("name", ["rbm", "chain"])
@@ -223,24 +223,31 @@ def test_rao_blackwellised_statistics_match_exact_statistics(name):
     # Mathematics: the layer-1 entries are averages of p(x_1 = 1 | the other layers) at the final
     # states (layer 1 is drawn last, so the other layers have not moved since), the others of
     # the binary states.
-    conditional = torch.sigmoid(model.conditional_logits(states, 1))
+    conditional = model.conditional_mean(states, 1)
     assert bool(((conditional > 0) & (conditional < 1)).all())
     expected = [conditional if i in last else x for i, x in enumerate(states)]
     by_hand = el.Statistics(
-        [x.mean(0) for x in expected], [expected[a].T @ expected[b] / num_particles for a, b in model.edges]
+        {f"layers.{i}.bias": x.mean(0) for i, x in enumerate(expected)}
+        | {
+            f"couplings.{k}.weight": expected[a].T @ expected[b] / num_particles
+            for k, (a, b) in enumerate(model.edges)
+        }
     )
+    assert sorted(stats) == sorted(by_hand)
     torch.testing.assert_close(flat(stats), flat(by_hand), rtol=1e-12, atol=1e-12)
 
     # el.ExactStatistics (itself checked against exact enumeration in tests/test_exact.py): z-scores
     # with the binomial standard error of binary states, an upper bound for the Rao-Blackwellised
     # ones (law of total variance, mathematics). Common practice, no source.
-    exact = flat(el.ExactStatistics(model).statistics())
+    exact_stats = el.ExactStatistics(model).statistics()
+    assert sorted(exact_stats) == sorted(stats)
+    exact = flat(exact_stats)
     z = (flat(stats) - exact).abs() / torch.sqrt(exact * (1 - exact) / num_particles)
     print(f"\n{name}: max |z| {float(z.max()):.4f} at {int(z.argmax())} over {z.numel()} statistics")
     assert float(z.max()) < Z_BOUND  # measured: 0.88 for both models
 
     # negative control: the same particles' binary statistics are different numbers.
-    binary = el.Statistics.from_states(states, model.edges)
+    binary = model.statistics(states)
     assert not torch.allclose(flat(binary), flat(stats))
 
 
@@ -262,7 +269,7 @@ def test_rao_blackwellised_statistics_have_lower_variance():
         sampler()
         sampler.sweeps = 2
         for _ in range(500):
-            estimates[flag].append(sampler.statistics().pairs[0].flatten())
+            estimates[flag].append(sampler.statistics()["couplings.0.weight"].flatten())
     assert all(torch.equal(a, b) for a, b in zip(twins[False].particles, twins[True].particles))
     calls = {flag: torch.stack(values) for flag, values in estimates.items()}
     ratio = float(calls[True].var(0).sum() / calls[False].var(0).sum())
@@ -272,7 +279,7 @@ def test_rao_blackwellised_statistics_have_lower_variance():
     # summed over the entries, is what the variances across calls estimate.
     ref = brute_force(model)
     v = ref.states[0]
-    conditional = torch.sigmoid(model.conditional_logits(ref.states, 1)).detach()
+    conditional = model.conditional_mean(ref.states, 1).detach()
     per_particle = {
         flag: (v[:, :, None] * (conditional if flag else ref.states[1])[:, None, :]).flatten(1)
         for flag in twins
@@ -286,7 +293,7 @@ def test_rao_blackwellised_statistics_have_lower_variance():
 
     # Both estimate the same expectation, el.ExactStatistics; a call's standard error is below
     # sqrt(0.25 / 200) = 0.035, the average over 500 calls is far closer (measured: within 0.002).
-    exact = el.ExactStatistics(model).statistics().pairs[0].flatten()
+    exact = el.ExactStatistics(model).statistics()["couplings.0.weight"].flatten()
     for flag in twins:
         torch.testing.assert_close(calls[flag].mean(0), exact, rtol=0, atol=0.01)
 
@@ -381,7 +388,8 @@ def test_dtype_conversion_moves_particles(convert):
     states = sampler()
     assert all(x.dtype == torch.float64 and is_binary(x) for x in states)
     stats = sampler.statistics()
-    assert all(t.dtype == torch.float64 for t in stats.means + stats.pairs)
+    assert sorted(stats) == ["couplings.0.weight", "layers.0.bias", "layers.1.bias"]
+    assert all(t.dtype == torch.float64 for t in stats.values())
     sampler.reset()
     assert all(x.dtype == torch.float64 for x in sampler.particles)
     assert all(x.dtype == torch.float64 for x in sampler.sample(40, burn_in=1, thin=1, progress=False))

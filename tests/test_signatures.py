@@ -45,5 +45,5 @@ def test_replica_exchange_gives_probabilities_of_its_coolest_replica():
     v, h = sampler.particles
     # Rao-Blackwell (mathematics): the last class (the hidden layer) enters as p(h = 1 | v).
     expected = torch.sigmoid(v @ model.couplings[0].weight + model.layers[1].bias).mean(0)
-    torch.testing.assert_close(statistics.means[1], expected)
-    assert not torch.equal(statistics.means[1], h.mean(0))  # negative control: not the states
+    torch.testing.assert_close(statistics["layers.1.bias"], expected)
+    assert not torch.equal(statistics["layers.1.bias"], h.mean(0))  # negative control: not the states

@@ -393,7 +393,7 @@ def test_fit_refuses_an_unknown_mixing_aid_or_one_beside_an_objective():
     before = snapshot(model)
     with pytest.raises(ValueError, match="mixing_aid must be one of"):
         el.fit(model, torch.ones(4, 6), epochs=1, mixing_aid="tempering", progress=False)
-    with pytest.raises(ValueError, match="mixing_aid chooses the default objective"):
+    with pytest.raises(ValueError, match="mixing_aid and negative choose the default objective"):
         el.fit(
             model,
             torch.ones(4, 6),

@@ -12,7 +12,7 @@ import torch
 from torch import Tensor
 from tqdm.auto import tqdm
 
-from .._checks import check_batch, check_size
+from .._checks import check_size
 from .._random import resolve_generator
 from ..phases.gibbs import PersistentSampler
 
@@ -378,7 +378,7 @@ def mixing_during_learning(
         raise TypeError(f"objective.negative must be a PersistentSampler, got {type(sampler).__name__}")
     if not isinstance(optimizer, torch.optim.Optimizer):
         raise TypeError(f"optimizer must be a torch.optim.Optimizer, got {type(optimizer).__name__}")
-    data = check_batch("data", data, sampler.model.sizes[0], dtype=sampler.model.dtype)
+    data = sampler.model.checked("data", data)
     updates, snapshots = check_size("updates", updates), check_size("snapshots", snapshots)
     batch_size = check_size("batch_size", batch_size)
     generator = resolve_generator(generator)

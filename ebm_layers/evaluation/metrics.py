@@ -7,21 +7,21 @@ function; ``reconstruction_error`` and ``free_energy_gap`` are monitors of train
 
 from __future__ import annotations
 
-import copy
 import math
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass
 
 import torch
 from torch import Tensor
-from torch.nn.functional import softplus
 
-from .._checks import check_batch, check_binary_batch, check_data, check_model, check_real, check_size
+from .._checks import check_batch, check_binary_batch, check_model, check_real, check_size
 from .._random import resolve_generator
-from ..model import functional
 from ..model.energy_model import EnergyModel
 from ..model.graph import smallest_cover
-from ..phases.exact import MAX_STATES, binary_codes
+from ..model.parameters import substituted
+from ..model.units import UnitLayer
+from ..phases.exact import MAX_STATES, joint_states
 from ..phases.mean_field import MeanField
 from .partition import (
     Estimate,
@@ -70,9 +70,6 @@ CHEAP_POSTERIOR_STATES = 2**12
 # Mean field for metrics runs to a residual near the dtype's resolution (float64: 1e-6).
 MEAN_FIELD_TOL = 1e-6
 MEAN_FIELD_MAX_ITER = 1000
-# Proposal logits are kept within +-20 (probabilities within about 2e-9 of 0 and 1), so every
-# hidden configuration can be drawn: the importance estimate stays unbiased.
-MAX_PROPOSAL_LOGIT = 20.0
 # Elements of one chunk of sampled or flipped copies; bounds memory (float64: 8 MiB).
 _CHUNK_ELEMENTS = 2**20
 
@@ -138,24 +135,26 @@ def log_likelihood(
     - ``"mean-field"``: the variational bound
       :math:`\log p(v) \ge -E(v, \mu) + H(q) - \log Z` with ``q`` the factorised posterior of
       mean-field marginals ``mu`` (the energy is multilinear, so ``E`` at the marginals is the
-      expected energy under ``q``; ``H`` sums the Bernoulli entropies of the hidden units).
+      expected energy under ``q``; ``H`` sums the hidden layers' entropies, ``UnitLayer.entropy``).
     - ``"importance"``: ``logmeanexp_i [-F(v, h_i) - log q(h_i)] - log Z`` over ``num_samples``
       draws ``h_i`` from ``q``. Only the hidden layers needed to make the rest summable are
-      drawn (the fewest units); the others are summed out in closed form, so an RBM needs no
-      draw and gets the exact value. ``exp`` of it is unbiased for ``p(v)``, so in expectation it
-      lies below ``log p(v)`` (Jensen), and usually much closer to it than the bound.
+      drawn (the fewest states: for binary units, the fewest units); the others are summed out
+      in closed form, so an RBM needs no draw and gets the exact value. ``exp`` of it is
+      unbiased for ``p(v)``, so in expectation it lies below ``log p(v)`` (Jensen), and usually
+      much closer to it than the bound.
     - ``"auto"`` (default): ``"exact"`` when the model has a closed-form free energy or needs at
       most ``CHEAP_POSTERIOR_STATES`` (2^12) states per example, else ``"mean-field"``.
 
     ``result.label`` says what the values are; with ``log_z`` estimated by AIS an exact or
     mean-field value becomes an estimate (see ``LABELS``).
 
-    Mean field and sampling run in float64 on a float64 copy of a float32 model; the model
-    itself is not changed. Values are detached; :func:`exact_log_likelihood` is differentiable.
+    Mean field and sampling run in float64 (the parameters of a float32 model cast for the
+    computation); the model itself is not changed. Values are detached;
+    :func:`exact_log_likelihood` is differentiable.
 
     Args:
         model: the :class:`EnergyModel`.
-        v: data in [0, 1], the model's dtype.
+        v: data within the visible layer's support ([0, 1] for binary units), the model's dtype.
         log_z: ``log Z``: a number, a 0-d tensor, or an estimate object with a ``log_z``
             attribute (then the result is flagged ``log_z_estimated``).
         method: ``"auto"``, ``"exact"``, ``"mean-field"`` or ``"importance"``.
@@ -179,7 +178,7 @@ def log_likelihood(
     if method not in METHODS:
         raise ValueError(f"method must be one of {METHODS}, got {method!r}")
     num_samples = check_size("num_samples", num_samples)
-    v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
+    v = check_batch("v", v, model.sizes[0], dtype=model.dtype, support=model.supports[0])
     log_z, estimated = _check_log_z(log_z)
     if method == "auto":
         method = "exact" if posterior_states(model) <= CHEAP_POSTERIOR_STATES else "mean-field"
@@ -191,19 +190,28 @@ def log_likelihood(
     return LogLikelihood(log_f - log_z, method, log_z, estimated)
 
 
+@contextmanager
+def _in_float64(model: EnergyModel) -> Iterator[None]:
+    """Within the block ``model`` computes in float64: its parameters cast (differentiably, so
+    gradients reach a float32 model's own parameters); the model itself is not changed."""
+    with substituted(model, {name: p.to(torch.float64) for name, p in model.named_parameters()}):
+        yield
+
+
+@torch.no_grad()
 def _variational_log_f(
     model: EnergyModel, v: Tensor, methods: Sequence[str], num_samples: int, generator: torch.Generator | None
 ) -> list[Tensor]:
     """``(B,)`` float64 estimates of ``-F(v)`` for each of ``methods`` (``"mean-field"``,
-    ``"importance"``) from one mean-field run on a float64 copy of the model."""
-    work = model if model.dtype == torch.float64 else copy.deepcopy(model).to(torch.float64)
-    marginals = _mean_field(work, v.to(torch.float64))
-    return [
-        _mean_field_bound(work, marginals)
-        if method == "mean-field"
-        else _importance_estimate(work, marginals, num_samples, generator)
-        for method in methods
-    ]
+    ``"importance"``) from one mean-field run, computed in float64."""
+    with _in_float64(model):
+        marginals = _mean_field(model, v.to(torch.float64))
+        return [
+            _mean_field_bound(model, marginals)
+            if method == "mean-field"
+            else _importance_estimate(model, marginals, num_samples, generator)
+            for method in methods
+        ]
 
 
 def _mean_field(model: EnergyModel, v: Tensor) -> list[Tensor]:
@@ -212,52 +220,85 @@ def _mean_field(model: EnergyModel, v: Tensor) -> list[Tensor]:
     return MeanField(model, tol=tol, max_iter=MEAN_FIELD_MAX_ITER)(v)
 
 
-def _entropy(marginals: Tensor) -> Tensor:
-    """Entropy ``(B,)`` of independent Bernoulli units with means ``marginals`` (0 log 0 = 0)."""
-    return (torch.special.entr(marginals) + torch.special.entr(1 - marginals)).sum(-1)
+def _entropy(model: EnergyModel, marginals: Sequence[Tensor]) -> Tensor:
+    """Entropy ``(B,)`` of the factorised ``q`` over the hidden layers with means ``marginals[1:]``:
+    the sum of each layer's ``entropy``."""
+    return sum(layer.entropy(mu) for layer, mu in zip(model.layers[1:], marginals[1:]))
 
 
 def _mean_field_bound(model: EnergyModel, marginals: list[Tensor]) -> Tensor:
-    """``-E(v, mu) + H(q)`` ``(B,)``: the lower bound on ``-F(v)`` of the factorised ``q``."""
-    energy = functional.energy(marginals, model.biases(), model.weights(), model.edges)
-    return -energy + sum(_entropy(mu) for mu in marginals[1:])
+    """``-E(v, mu) + H(q)`` ``(B,)``: the lower bound on ``-F(v)`` of the factorised ``q``.
+
+    The energy at the marginals is the expected energy under ``q`` because every coupling is linear
+    in each of its layers' states and ``q`` makes them independent (a lateral term has no diagonal,
+    so it never multiplies a unit by itself), and because a unit term ``U(x)`` of the built-in units
+    is linear in ``x``. A unit type whose ``U`` is not (a quadratic term) would need ``E_q[U]`` here.
+    """
+    return -model.joint_energy(marginals) + _entropy(model, marginals)
+
+
+def _state_bits(layer: UnitLayer) -> float:
+    """``log2`` of the number of states of ``layer``; infinite for a unit type that does not list them."""
+    return math.log2(layer.num_states) if hasattr(layer, "num_states") else math.inf
+
+
+def _joint_state_count(model: EnergyModel, layers: Sequence[int]) -> int | float:
+    """Number of joint states of ``layers`` (``math.inf`` when one does not list its states)."""
+    if not all(hasattr(model.layers[i], "num_states") for i in layers):
+        return math.inf
+    return math.prod(model.layers[i].num_states for i in layers)
 
 
 def _sampled_layers(model: EnergyModel) -> tuple[int, ...]:
-    """The hidden layers to draw, fewest units first, so that the others sum out given them and v.
+    """The hidden layers to draw or enumerate, fewest states first, so that the others sum out given
+    them and v.
 
-    It is the smallest cover of the couplings with layer 0 counted as free (v is always given).
+    It is the smallest cover of the couplings with layer 0 counted as free (v is always given),
+    each layer weighed by ``log2`` of its number of states (binary units: its number of units); a
+    layer that does not list its states weighs infinitely, so it is summed out where it can be.
     """
-    return tuple(i for i in smallest_cover((0, *model.sizes[1:]), model.edges) if i != 0)
+    bits = [0.0, *(_state_bits(layer) for layer in model.layers[1:])]
+    return tuple(i for i in smallest_cover(bits, model.edges) if i != 0)
 
 
 def _importance_estimate(
     model: EnergyModel, marginals: list[Tensor], num_samples: int, generator: torch.Generator
 ) -> Tensor:
-    """``logmeanexp_i [-F(v, h_i) - log q(h_i)]`` ``(B,)`` with ``h_i`` drawn from the mean-field ``q``."""
+    """``logmeanexp_i [-F(v, h_i) - log q(h_i)]`` ``(B,)`` with ``h_i`` drawn from the proposal ``q``.
+
+    The proposal draws each sampled layer from its own conditional given the input that the
+    mean-field marginals of its neighbours send it (through a lateral coupling its own marginals
+    too), every unit independently of the others and of the other sampled layers. At the mean-field
+    fixed point ``mu = mean(input(mu))``, so this is the factorised ``q`` with exactly the mean-field
+    marginals; for binary units, independent Bernoulli units with ``p(h_j = 1) = mu_j``, since there
+    ``mu_j = sigmoid(b_j + input_j)``. Built from the finite input rather than from the marginals,
+    it gives every state a positive probability even where a marginal has rounded to 0 or 1, so
+    ``exp`` of the estimate stays unbiased for ``p(v)``.
+    """
     sampled = _sampled_layers(model)
-    logits = {i: torch.logit(marginals[i]).clamp(-MAX_PROPOSAL_LOGIT, MAX_PROPOSAL_LOGIT) for i in sampled}
+    inputs = {i: model.input_or_zeros(marginals, i) for i in sampled}
     num_samples = num_samples if sampled else 1  # nothing to draw: every weight is exp(-F(v))
     v = marginals[0]
     per_chunk = max(1, _CHUNK_ELEMENTS // (v.shape[0] * sum(model.sizes)))
     log_weights = [
-        _log_weights(model, v, logits, min(per_chunk, num_samples - start), generator)
+        _log_weights(model, v, inputs, min(per_chunk, num_samples - start), generator)
         for start in range(0, num_samples, per_chunk)
     ]
     return torch.logsumexp(torch.cat(log_weights, dim=1), dim=1) - math.log(num_samples)
 
 
 def _log_weights(
-    model: EnergyModel, v: Tensor, logits: dict[int, Tensor], count: int, generator: torch.Generator
+    model: EnergyModel, v: Tensor, inputs: dict[int, Tensor], count: int, generator: torch.Generator
 ) -> Tensor:
     """``-F(v, h) - log q(h)`` ``(B, count)`` for ``count`` draws ``h`` per example."""
     given = {0: v.repeat_interleave(count, dim=0)}
     log_q = 0.0
-    for i, layer_logits in logits.items():
-        layer_logits = layer_logits.repeat_interleave(count, dim=0)
-        given[i] = functional.bernoulli(layer_logits, generator)
-        log_q = log_q + functional.bernoulli_log_probability(given[i], torch.sigmoid(layer_logits))
-    log_f = -functional.marginal_free_energy(given, model.biases(), model.weights(), model.edges)
+    for i, input in inputs.items():
+        input = input.repeat_interleave(count, dim=0)
+        layer = model.layers[i]
+        given[i] = layer.sample(input, generator)
+        log_q = log_q + layer.log_probability(given[i], input)
+    log_f = -model.summed_free_energy(given)
     return (log_f - log_q).view(v.shape[0], count)
 
 
@@ -277,43 +318,69 @@ def exact_log_likelihood(model: EnergyModel, v: Tensor, *, max_states: int = MAX
 def exact_free_energy(model: EnergyModel, v: Tensor, *, max_states: int = MAX_STATES) -> Tensor:
     """Exact free energy ``F(v) = -log sum_h exp(-E(v, h))`` ``(B,)`` in float64, differentiable.
 
-    In closed form where the model has one; otherwise the fewest hidden units whose states make
-    the other layers summable given ``v`` (:func:`posterior_states`) are enumerated per example,
-    the others summed out in closed form, in chunks with a log-sum-exp. ``ValueError`` when that
-    needs more than ``max_states`` states per example.
+    In closed form where the model has one; otherwise the fewest hidden states that make the other
+    layers summable given ``v`` (:func:`posterior_states`) are enumerated per example, the others
+    summed out in closed form (their ``log_partition``), in chunks with a log-sum-exp.
+    ``ValueError`` when that needs more than ``max_states`` states per example, or the states of a
+    layer whose unit type does not list them.
     """
     check_model(model)
-    if model.has_free_energy:
-        return model.free_energy(v, dtype=torch.float64)
-    v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
+    v = check_batch("v", v, model.sizes[0], dtype=model.dtype, support=model.supports[0])
     layers = _sampled_layers(model)
-    sizes = [model.sizes[i] for i in layers]
-    total = 2 ** sum(sizes)
+    total = _joint_state_count(model, layers)
+    if math.isinf(total):
+        missing = [i for i in layers if not hasattr(model.layers[i], "num_states")]
+        raise ValueError(
+            f"the exact free energy of this model enumerates the states of layers {missing} per "
+            "example, whose unit types do not list them (no num_states); use the mean-field or "
+            "importance-sampled log-likelihood instead"
+        )
     if total > max_states:
         raise ValueError(
-            f"the exact free energy of this model enumerates 2^{total.bit_length() - 1} states of layers "
-            f"{list(layers)} per example, more than max_states={max_states:,}"
+            f"the exact free energy of this model enumerates {total:,} states of layers {list(layers)} "
+            f"per example, more than max_states={max_states:,}"
         )
-    biases = [b.to(torch.float64) for b in model.biases()]
-    weights = [w.to(torch.float64) for w in model.weights()]
-    v = v.to(torch.float64)
-    rows = max(1, min(total, _CHUNK_ELEMENTS // (v.shape[0] * sum(model.sizes))))
+    batch = v.shape[0]
+    rows = max(1, min(total, _CHUNK_ELEMENTS // (batch * sum(model.sizes))))
     parts = []
-    for start in range(0, total, rows):
-        bits = binary_codes(start, min(start + rows, total), sum(sizes))  # (S, sum(sizes))
-        count = len(bits)
-        given = {0: v.repeat_interleave(count, dim=0)}
-        for i, states in zip(layers, bits.split(sizes, dim=1)):
-            given[i] = states.repeat(v.shape[0], 1)
-        log_f = -functional.marginal_free_energy(given, biases, weights, model.edges)
-        parts.append(torch.logsumexp(log_f.view(v.shape[0], count), dim=1))
+    with _in_float64(model):
+        v = v.to(torch.float64)
+        for start in range(0, total, rows):
+            stop = min(start + rows, total)
+            given = {0: v.repeat_interleave(stop - start, dim=0)}
+            for i, states in joint_states(model, layers, start, stop).items():
+                given[i] = states.to(torch.float64).repeat(batch, 1)
+            log_f = -model.summed_free_energy(given)
+            parts.append(torch.logsumexp(log_f.view(batch, stop - start), dim=1))
     return -torch.logsumexp(torch.stack(parts, dim=1), dim=1)
 
 
-def posterior_states(model: EnergyModel) -> int:
-    """States per example that :func:`exact_free_energy` enumerates (1 with a closed form)."""
+def posterior_states(model: EnergyModel) -> int | float:
+    """States per example that :func:`exact_free_energy` enumerates (1 with a closed form;
+    ``math.inf`` when a layer it would have to enumerate does not list its states)."""
     check_model(model)
-    return 2 ** sum(model.sizes[i] for i in _sampled_layers(model))
+    return _joint_state_count(model, _sampled_layers(model))
+
+
+def _flip_refusal(layer: UnitLayer) -> str | None:
+    """Why :func:`pseudo_log_likelihood` cannot flip the units of visible ``layer`` (``None``: it can).
+
+    It needs every unit to take the values 0 and 1 whatever the others do: a discrete layer whose
+    states are every binary vector.
+    """
+    name = type(layer).__name__
+    if not hasattr(layer, "num_states"):
+        return (
+            f"pseudo_log_likelihood needs a discrete visible layer (a unit type that lists its states "
+            f"with num_states); layer 0 is a {name}, which does not"
+        )
+    if layer.support != (0.0, 1.0) or layer.num_states != 2**layer.size:
+        return (
+            "pseudo_log_likelihood flips one visible unit at a time, so layer 0 must hold binary units "
+            f"(support (0, 1), every 0/1 vector a state: 2^{layer.size} states); it is a {name} with "
+            f"support {layer.support} and {layer.num_states:,} states"
+        )
+    return None
 
 
 @torch.no_grad()
@@ -321,12 +388,13 @@ def pseudo_log_likelihood(model: EnergyModel, v: Tensor) -> Tensor:
     r"""Pseudo-log-likelihood :math:`\sum_i \log p(v_i \mid v_{-i})` of binary data, float64.
 
     Every visible unit is flipped in turn (not one random unit per example), under the visible
-    marginal ``p(v)``: :math:`\log p(v_i \mid v_{-i}) = -\mathrm{softplus}(F(v) - F(v^{(i)}))`
+    marginal ``p(v)``: :math:`\log p(v_i \mid v_{-i}) = -\log(1 + e^{F(v) - F(v^{(i)})})`
     with :math:`v^{(i)}` the data with unit ``i`` flipped. Needs no partition function. Only
     for models with a closed-form free energy (no two non-visible units coupled; visible
-    lateral couplings are fine), else ``ValueError``. Flipping unit ``i`` moves each hidden
-    input by ``+-W[i, :]``, so the cost is one ``(B, n_0, n_k)`` softplus per hidden layer
-    ``k``, taken in chunks of examples. Detached.
+    lateral couplings are fine) and a visible layer of binary units, else ``ValueError``.
+    Couplings are linear in each layer's state, so flipping unit ``i`` moves each hidden input by
+    what the unit alone sends (``+-W[i, :]`` for a dense coupling), and the cost is one
+    ``(B, n_0, n_k)`` ``log_partition`` per hidden layer ``k``, taken in chunks. Detached.
 
     Args:
         model: the :class:`EnergyModel`.
@@ -346,56 +414,72 @@ def pseudo_log_likelihood(model: EnergyModel, v: Tensor) -> Tensor:
         tensor([-3.4657, -3.4657], dtype=torch.float64)
     """
     check_model(model)
+    refusal = _flip_refusal(model.layers[0])
+    if refusal is not None:
+        raise ValueError(refusal)
     v = check_binary_batch("v", v, model.sizes[0], dtype=model.dtype)
     model.check_summable({0})
-    biases = [b.to(torch.float64) for b in model.biases()]
-    weights = [w.to(torch.float64) for w in model.weights()]
-    v = v.to(torch.float64)
-    flips = 1 - 2 * v  # +1 turns a unit on, -1 turns it off
-    lateral = [(edge, w) for edge, w in zip(model.edges, weights) if edge == (0, 0)]
-    # Change of -F(v) = b.v + 1/2 v L v + sum softplus(hidden inputs) when unit i flips: the
-    # visible terms move by flip_i * (b_i + (v L)_i) (L symmetric with zero diagonal) ...
-    visible_input = functional.layer_logits(
-        {0: v}, 0, biases, [w for _, w in lateral], [edge for edge, _ in lateral]
-    )
-    changes = flips * visible_input
-    # ... and each hidden layer (coupled to layer 0 alone) sees its input moved by flip_i * W[i, :].
-    for edge, weight in zip(model.edges, weights):
-        if edge != (0, 0):
-            hidden = edge[1] if edge[0] == 0 else edge[0]
-            _, matrix = functional.coupling_input(edge, weight, hidden)
-            hidden_input = functional.layer_logits({0: v}, hidden, biases, weights, model.edges)
-            changes = changes + _softplus_changes(hidden_input, flips, matrix)
-    return -softplus(changes).sum(-1)
+    with _in_float64(model):
+        changes = _flip_changes(model, v.to(torch.float64))
+    # Two values per unit: p(v_i | v_-i) = 1 / (1 + exp(change of -F when unit i flips)).
+    return -torch.logaddexp(torch.zeros_like(changes), changes).sum(-1)
 
 
-def _softplus_changes(inputs: Tensor, flips: Tensor, matrix: Tensor) -> Tensor:
-    """``sum_j softplus(inputs_j + flips_i M_ij) - sum_j softplus(inputs_j)`` ``(B, n_0)``, in chunks.
+def _flip_changes(model: EnergyModel, v: Tensor) -> Tensor:
+    """Change ``(B, n_0)`` of ``-F(v) = -U_0(v) - C_lateral(v) + sum_k log_partition_k(input_k(v))``
+    when visible unit ``i`` alone flips, for every ``i``; every non-visible layer is coupled to
+    layer 0 alone.
 
-    ``inputs`` ``(B, n_k)``, ``flips`` ``(B, n_0)``, ``matrix`` ``(n_0, n_k)``.
+    The visible unit term is evaluated on the flipped copies (any ``U_0``), in chunks of copies.
+    The couplings are linear in each end, so a flip ``d_i e_i`` (``d_i = +-1``) moves a hidden
+    input by ``d_i`` times what unit ``i`` alone sends, and moves a lateral term
+    ``C(x, x)`` by ``-d_i input_i(v) + C(e_i, e_i)`` (bilinear, and ``input = -dC/dx``).
     """
-    rows = max(1, _CHUNK_ELEMENTS // matrix.numel())
+    batch, n = v.shape
+    flips = 1 - 2 * v  # +1 turns a unit on, -1 turns it off
+    units = torch.eye(n, dtype=v.dtype)  # row i: unit i alone on
+    # Hidden layers: their input given v, and what each visible unit alone sends them (n, n_k).
+    hidden = {}
+    for k in range(1, len(model.layers)):
+        input = model.layer_input({0: v}, k)
+        if input is not None:  # an uncoupled layer adds a constant
+            hidden[k] = (input, model.layer_input({0: units}, k), model.layers[k].log_partition(input))
+    visible = model.layers[0]
+    own = visible.energy(v)
+    rows = max(1, _CHUNK_ELEMENTS // max([n, *(model.sizes[k] for k in hidden)]))
+    steps = flips.reshape(-1)
     parts = []
-    for start in range(0, inputs.shape[0], rows):
-        base = inputs[start : start + rows, None, :]
-        moved = base + flips[start : start + rows, :, None] * matrix
-        parts.append(softplus(moved).sum(-1) - softplus(base).sum(-1))
-    return torch.cat(parts)
+    for start in range(0, batch * n, rows):
+        index = torch.arange(start, min(start + rows, batch * n))
+        example, unit = index // n, index % n
+        step = steps[index]
+        flipped = v[example]
+        flipped[torch.arange(len(index)), unit] += step
+        change = own[example] - visible.energy(flipped)
+        for k, (input, sent, log_partition) in hidden.items():
+            moved = input[example] + step[:, None] * sent[unit]
+            change = change + model.layers[k].log_partition(moved) - log_partition[example]
+        parts.append(change)
+    changes = torch.cat(parts).view(batch, n)
+    lateral = model.lateral_coupling(0)
+    if lateral is not None:
+        changes = changes + flips * lateral.input_to(0, v) - lateral.energy(units, units)
+    return changes
 
 
 @torch.no_grad()
 def reconstruction_error(model: EnergyModel, v: Tensor) -> Tensor:
     """Squared error between data and its mean-field reconstruction, summed per example.
 
-    The hidden marginals come from mean field with ``v`` clamped; the reconstruction is
-    ``p(v_i = 1 | those marginals)``, ``sigmoid`` of the visible layer's conditional logits
-    (with visible lateral couplings, given the other data units too). A common monitor of
-    training, not a likelihood: it measures how well one pass reproduces the data, not how
-    probable the model finds it.
+    The hidden marginals come from mean field with ``v`` clamped; the reconstruction is the
+    visible layer's conditional mean given the input they send (binary units:
+    ``p(v_i = 1 | those marginals)``; with visible lateral couplings, given the other data units
+    too). A common monitor of training, not a likelihood: it measures how well one pass
+    reproduces the data, not how probable the model finds it.
 
     Args:
         model: the :class:`EnergyModel`.
-        v: data in [0, 1], the model's dtype.
+        v: data within the visible layer's support ([0, 1] for binary units), the model's dtype.
 
     Shape:
         - ``v``: ``(B, n_0)``.
@@ -411,10 +495,9 @@ def reconstruction_error(model: EnergyModel, v: Tensor) -> Tensor:
         tensor([1.])
     """
     check_model(model)
-    v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
+    v = check_batch("v", v, model.sizes[0], dtype=model.dtype, support=model.supports[0])
     marginals = _mean_field(model, v)
-    logits = functional.layer_logits(marginals, 0, model.biases(), model.weights(), model.edges)
-    return (v - torch.sigmoid(logits)).square().sum(-1)
+    return (v - model.layers[0].mean(model.input_or_zeros(marginals, 0))).square().sum(-1)
 
 
 @torch.no_grad()
@@ -428,7 +511,8 @@ def free_energy_gap(model: EnergyModel, train: Tensor, test: Tensor, *, method: 
 
     Args:
         model: the :class:`EnergyModel`.
-        train, test: data in [0, 1], the model's dtype.
+        train, test: data within the visible layer's support ([0, 1] for binary units), the
+            model's dtype.
         method: ``"exact"``: the closed-form free energy (``ValueError`` for a model without
             one); ``"mean-field"``: the mean-field free energy ``E_q[E] - H(q)``, an upper bound
             on ``F(v)`` that is exact for an RBM; ``"auto"`` (default): exact where a closed form
@@ -446,15 +530,13 @@ def free_energy_gap(model: EnergyModel, train: Tensor, test: Tensor, *, method: 
         0.0
     """
     check_model(model)
-    train = check_batch("train", train, model.sizes[0], dtype=model.dtype)
-    test = check_batch("test", test, model.sizes[0], dtype=model.dtype)
+    train = check_batch("train", train, model.sizes[0], dtype=model.dtype, support=model.supports[0])
+    test = check_batch("test", test, model.sizes[0], dtype=model.dtype, support=model.supports[0])
     if method not in ("auto", "exact", "mean-field"):
         raise ValueError(f"method must be 'auto', 'exact' or 'mean-field', got {method!r}")
     if method == "exact" or (method == "auto" and model.has_free_energy):
         model.check_summable({0})
-        train_mean, test_mean = (
-            float(model.free_energy(x, dtype=torch.float64).mean()) for x in (train, test)
-        )
+        train_mean, test_mean = (float(exact_free_energy(model, x).mean()) for x in (train, test))
     else:
         train_mean, test_mean = (
             -float(_variational_log_f(model, x, ("mean-field",), 1, None)[0].mean()) for x in (train, test)
@@ -486,7 +568,7 @@ class SplitMetrics:
         conservative_gap: the closest log-likelihood estimate (exact, or importance-sampled)
             minus the conservative one, on those same examples, or ``None``.
         pseudo_log_likelihood: mean pseudo-log-likelihood (``None`` without closed-form free
-            energy or for non-binary data).
+            energy, for a visible layer of other than binary units, or for non-binary data).
         reconstruction_error: mean squared reconstruction error per example.
     """
 
@@ -606,13 +688,14 @@ def evaluate(
         an :class:`Evaluation`.
     """
     check_model(model)
-    data = check_data("data", data, model.sizes[0], dtype=model.dtype)
+    data = model.checked("data", data, convert=True)
     if test is not None:
-        test = check_data("test", test, model.sizes[0], dtype=model.dtype)
+        test = model.checked("test", test, convert=True)
     reverse_examples = check_size("reverse_examples", reverse_examples)
     generator = resolve_generator(generator)
     estimate, source = None, "given"
-    enumerated_states = 2 ** sum(model.sizes[i] for i in smallest_cover(model.sizes, model.edges))
+    cover = smallest_cover([_state_bits(layer) for layer in model.layers], model.edges)
+    enumerated_states = _joint_state_count(model, cover)
     if log_z is None and enumerated_states <= EVALUATE_EXACT_STATES:
         log_z, source = float(exact_log_partition(model)), "exact (enumeration)"
     elif log_z is None:
@@ -628,6 +711,7 @@ def evaluate(
     log_z_value, estimated = _check_log_z(log_z)
     cautions = [] if estimate is None or estimate.warning is None else [estimate.warning]
     closed_form = model.has_free_energy
+    flippable = _flip_refusal(model.layers[0]) is None
     exact = posterior_states(model) <= CHEAP_POSTERIOR_STATES
     reversible = can_reverse_anneal(model)
     target = data if test is None else test
@@ -657,7 +741,7 @@ def evaluate(
             conservative_examples=examples,
             conservative_gap=gap,
             pseudo_log_likelihood=float(pseudo_log_likelihood(model, x).mean())
-            if closed_form and binary
+            if closed_form and flippable and binary
             else None,
             reconstruction_error=float(reconstruction_error(model, x).mean()),
         )

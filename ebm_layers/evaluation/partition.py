@@ -10,13 +10,13 @@ from dataclasses import dataclass, field
 import torch
 from torch import Tensor
 from torch.autograd.function import once_differentiable
-from torch.nn.functional import softplus
 from tqdm.auto import tqdm
 
 from .._checks import check_batch, check_model, check_size
 from .._random import resolve_generator
 from ..model import functional as F
 from ..model.energy_model import EnergyModel
+from ..model.parameters import substituted
 from ..phases.exact import MAX_STATES, exact_moments
 from ..phases.gibbs import gibbs_sweep
 from ..phases.mean_field import MeanField
@@ -40,18 +40,16 @@ class _ExactLogPartition(torch.autograd.Function):
 
     @staticmethod
     def forward(ctx, model: EnergyModel, max_states: int, *parameters: Tensor) -> Tensor:
-        log_z, ctx.stats = exact_moments(model, max_states=max_states)
-        ctx.edges, ctx.dtypes = model.edges, [p.dtype for p in parameters]
+        log_z, stats = exact_moments(model, max_states=max_states)
+        ctx.statistics = [stats[name] for name, _ in model.named_parameters()]
+        ctx.dtypes = [p.dtype for p in parameters]
         return log_z
 
     @staticmethod
     @once_differentiable
     def backward(ctx, grad: Tensor):
-        stats = ctx.stats
-        # -E contains b.x, x_a W x_b^T, and 1/2 x L x^T for a lateral L (taken entrywise).
-        pair_grads = [p * 0.5 if a == b else p for p, (a, b) in zip(stats.pairs, ctx.edges)]
-        grads = [grad * g for g in stats.means + pair_grads]
-        return (None, None, *(g.to(dtype) for g, dtype in zip(grads, ctx.dtypes)))
+        # d log Z / d theta = <-dE/d theta>_model: the exact statistics, one per parameter.
+        return (None, None, *((grad * s).to(dtype) for s, dtype in zip(ctx.statistics, ctx.dtypes)))
 
 
 def exact_log_partition(model: EnergyModel, *, max_states: int = MAX_STATES) -> Tensor:
@@ -72,7 +70,7 @@ def exact_log_partition(model: EnergyModel, *, max_states: int = MAX_STATES) -> 
         4.1589
     """
     check_model(model)
-    parameters = [*model.biases(), *model.weights()]
+    parameters = list(model.parameters())
     if torch.is_grad_enabled() and any(p.requires_grad for p in parameters):
         return _ExactLogPartition.apply(model, max_states, *parameters)
     return exact_moments(model, statistics=False, max_states=max_states)[0]
@@ -190,81 +188,79 @@ UNIFORM_BLOCK = 1 << 20
 
 
 class _AnnealingPath:
-    """The path ``E_beta = (1 - beta) E_A + beta E_B`` between independent units (``A``, biases
-    ``a``) and the model (``B``), with the layers ``summed`` (one colour class, no lateral
-    couplings) summed out analytically.
+    """The path ``E_beta = (1 - beta) E_A + beta E_B`` between a base model ``A`` of independent
+    units (the layers alone, under base parameters ``theta_A``; couplings off) and the model ``B``,
+    with the layers ``summed`` (one colour class, no lateral couplings) summed out analytically.
 
-    ``E_beta = beta * E'`` where ``E'`` is the model's energy with biases ``b + (1 - beta) / beta * a``,
-    so a transition is a Gibbs sweep of the model at inverse temperature ``beta`` with those biases.
-    Over the kept layers ``K`` the unnormalised log-probability is
-    ``log f_beta(x_K) = a.x_K + beta * g(x_K) + sum_s sum_j softplus(beta * u_sj + (1 - beta) a_sj)``
-    with ``g = (b - a).x_K - (couplings within K)`` and ``u_s = b_s + input_s(x_K)``.
+    Every layer term is linear in its parameters, so ``E_beta`` has the layers under the
+    interpolated parameters ``theta_beta = (1 - beta) theta_A + beta theta_B`` and the couplings
+    scaled by ``beta``: a transition is a Gibbs sweep with those parameters at inverse temperature
+    ``beta`` (:func:`gibbs_sweep`). Over the kept layers ``K`` the unnormalised log-probability is
+    ``log f_beta(x_K) = -U_A(x_K) + beta * g(x_K) + sum_s log_partition_s(beta * u_s; theta_beta)``
+    with ``U_A`` the kept layers' base terms, ``g = U_A - U_B - C_K`` (``C_K`` the couplings within
+    ``K``) and ``u_s`` the input the kept layers send to summed layer ``s``. The log-partition terms
+    are evaluated in float64, so the small per-step differences of a long run keep their digits.
     """
 
-    def __init__(self, model: EnergyModel, base_biases: list[Tensor]) -> None:
+    def __init__(self, model: EnergyModel, base: dict[str, Tensor]) -> None:
         self.model = model
         self.summed = _summed_class(model)
         self.kept = [i for i in range(len(model.sizes)) if i not in self.summed]
-        self.base_biases = base_biases
-        self.biases = [b.detach() for b in model.biases()]
-        self.weights = [w.detach() for w in model.weights()]
-        wide = torch.float64
-        self.base64 = [a.to(wide) for a in base_biases]
-        self.shift64 = [(b.to(wide) - a) for b, a in zip(self.biases, self.base64)]
-        self.kept_couplings = [
-            (edge, w.to(wide))
-            for edge, w in zip(model.edges, self.weights)
-            if edge[0] in self.kept and edge[1] in self.kept
-        ]
-        self.log_z_base = float(sum(softplus(a).sum() for a in self.base64))
+        self.target = {name: p.detach() for name, p in model.named_parameters() if name in base}
+        self.base = base
+        self.wide_model = {name: p.detach().to(torch.float64) for name, p in model.named_parameters()}
+        self.wide_base = {name: value.to(torch.float64) for name, value in base.items()}
+        with substituted(model, {**self.wide_model, **self.wide_base}):
+            self.log_z_base = float(
+                sum(layer.log_partition(_zeros(1, layer, torch.float64)).sum() for layer in model.layers)
+            )
+
+    def layer_parameters(self, beta: float, wide: bool = False) -> dict[str, Tensor]:
+        """The layers' parameters at ``beta`` (in float64 when ``wide``)."""
+        target = {name: self.wide_model[name] for name in self.base} if wide else self.target
+        base = self.wide_base if wide else self.base
+        if beta == 1.0:
+            return target
+        return {name: (1.0 - beta) * base[name] + beta * value for name, value in target.items()}
 
     def draw_base(self, num_chains: int, generator: torch.Generator) -> list[Tensor | None]:
-        """Kept layers drawn from the base model (independent units); summed layers are ``None``."""
-        states: list[Tensor | None] = [None] * len(self.biases)
-        for i in self.kept:
-            probabilities = torch.sigmoid(self.base_biases[i]).expand(num_chains, -1)
-            states[i] = torch.bernoulli(probabilities, generator=generator)
+        """Kept layers drawn from the base model (each layer alone); summed layers are ``None``."""
+        states: list[Tensor | None] = [None] * len(self.model.layers)
+        dtype = self.model.dtype
+        with substituted(self.model, self.base):
+            for i in self.kept:
+                layer = self.model.layers[i]
+                states[i] = layer.sample(_zeros(num_chains, layer, dtype), generator)
         return states
 
     def terms(self, states: list[Tensor | None]) -> _Terms:
         """What ``log f_beta`` of the current kept states needs at any beta (one product per
         coupling into the summed layers)."""
-        inputs = {
-            s: F.layer_logits(states, s, self.biases, self.weights, self.model.edges) for s in self.summed
-        }
+        model = self.model
+        inputs = {s: model.input_or_zeros(states, s) for s in self.summed}
         wide = {i: states[i].to(torch.float64) for i in self.kept}
-        shift = sum(wide[i] @ self.shift64[i] for i in self.kept)
-        for edge, weight in self.kept_couplings:
-            shift = shift - F.pair_energy(edge, weight, wide)
-        return _Terms(wide, shift, inputs)
+        with substituted(model, {**self.wide_model, **self.wide_base}):
+            base_term = sum(model.layers[i].energy(wide[i]) for i in self.kept)
+        with substituted(model, self.wide_model):
+            model_term = model.joint_energy(wide)
+        return _Terms(inputs, -base_term, base_term - model_term)
 
-    def _summed_logits(self, beta: float, s: int, u: Tensor) -> Tensor:
-        """``beta * u_s + (1 - beta) * a_s``: the logits of summed layer ``s`` at ``beta``."""
-        return u if beta == 1.0 else beta * u + (1.0 - beta) * self.base_biases[s]
+    def _log_partitions(self, beta: float, terms: _Terms) -> Tensor | float:
+        """``sum_s log_partition_s(beta * u_s; theta_beta)`` ``(B,)`` in float64."""
+        model, total = self.model, 0.0
+        with substituted(model, {**self.wide_model, **self.layer_parameters(beta, wide=True)}):
+            for s, u in terms.inputs.items():
+                total = total + model.layers[s].log_partition(beta * u.to(torch.float64))
+        return total
 
     def log_f(self, beta: float, terms: _Terms) -> Tensor:
         """``log f_beta`` ``(B,)`` float64 of the states ``terms`` were computed from."""
-        total = sum(terms.wide[i] @ self.base64[i] for i in self.kept) + beta * terms.shift
-        for s, u in terms.inputs.items():
-            total = total + softplus(self._summed_logits(beta, s, u).to(torch.float64)).sum(-1)
-        return total
+        return terms.base + beta * terms.shift + self._log_partitions(beta, terms)
 
     def log_ratio(self, beta: float, other: float, terms: _Terms) -> Tensor:
-        """``log f_beta - log f_other`` ``(B,)`` float64: the ``a.x_K`` term cancels.
-
-        Per summed unit ``softplus(x) - softplus(x + e)`` with ``x`` the logit at ``beta`` and
-        ``e = (other - beta)(u - a)``, computed by :func:`_softplus_drop` in the model's dtype
-        without the cancellation of subtracting two softplus values. Keeps the summed layers'
-        probabilities at ``beta`` in ``terms`` for a transition at the same ``beta``.
-        """
-        total = (beta - other) * terms.shift
-        terms.beta, terms.probabilities = beta, {}
-        for s, u in terms.inputs.items():
-            x = self._summed_logits(beta, s, u)
-            probability = torch.sigmoid(x)
-            terms.probabilities[s] = probability
-            total = total + _softplus_drop(x, (other - beta) * (u - self.base_biases[s]), probability)
-        return total
+        """``log f_beta - log f_other`` ``(B,)`` float64 (the base term cancels)."""
+        summed = self._log_partitions(beta, terms) - self._log_partitions(other, terms)
+        return (beta - other) * terms.shift + summed
 
     def transition(
         self, beta: float, states: list[Tensor | None], terms: _Terms, generator: F.Uniforms
@@ -272,45 +268,26 @@ class _AnnealingPath:
         """One Gibbs sweep leaving ``p_beta`` invariant (``beta > 0``): the summed layers drawn
         from their conditional given the kept ones (``terms`` of the current states), then the
         kept layers by colour class."""
-        for s, u in terms.inputs.items():
-            if terms.beta == beta:
-                states[s] = F.sample_bernoulli(terms.probabilities[s], generator)
-            else:
-                states[s] = F.bernoulli(self._summed_logits(beta, s, u), generator)
-        tilted = [b + ((1.0 - beta) / beta) * a for b, a in zip(self.biases, self.base_biases)]
+        model, parameters = self.model, self.layer_parameters(beta)
+        with substituted(model, parameters):
+            for s, u in terms.inputs.items():
+                layer = model.layers[s]
+                source = generator if getattr(layer, "takes_uniform_blocks", False) else generator.generator
+                states[s] = layer.sample(beta * u if beta != 1.0 else u, source)
         gibbs_sweep(
-            self.model, states, generator, clamped=self.summed, biases=tilted, inverse_temperature=beta
+            model, states, generator, clamped=self.summed, parameters=parameters, inverse_temperature=beta
         )
 
 
-# _softplus_drop uses log1p / expm1 while |e| stays below this (the argument of log1p then stays
-# above e^-1 - 1, far from -1); beyond it the plain float64 difference is accurate enough.
-_DROP_LIMIT = 1.0
-
-
-def _softplus_drop(x: Tensor, e: Tensor, probability: Tensor) -> Tensor:
-    """``sum_j softplus(x_j) - softplus(x_j + e_j)`` per row ``(B,)`` float64, given
-    ``probability = sigmoid(x)``.
-
-    The identity ``softplus(x) - softplus(x + e) = -log1p(sigmoid(x) * expm1(e))`` (from memory;
-    it is ``log((1 + e^x) / (1 + e^(x + e)))`` rearranged) keeps every operation's relative
-    accuracy, so even float32 gives the small per-step differences of a long annealing run to
-    about 1e-7 of their size, where subtracting two float32 softplus values would lose all of it.
-    """
-    low, high = torch.aminmax(e)
-    if max(-float(low), float(high)) <= _DROP_LIMIT:
-        return torch.log1p(probability * torch.expm1(e)).sum(-1, dtype=torch.float64).neg_()
-    x, e = x.to(torch.float64), e.to(torch.float64)
-    return (softplus(x) - softplus(x + e)).sum(-1)
+def _zeros(batch: int, layer, dtype: torch.dtype) -> Tensor:
+    return torch.zeros(batch, layer.size, dtype=dtype)
 
 
 @dataclass
 class _Terms:
-    wide: dict[int, Tensor]  # the kept states in float64
-    shift: Tensor  # g(x_K), (B,) float64
     inputs: dict[int, Tensor]  # u_s in the model's dtype
-    beta: float | None = None  # the beta of ``probabilities``, set by log_ratio
-    probabilities: dict[int, Tensor] = field(default_factory=dict)  # the summed layers' at ``beta``
+    base: Tensor  # -U_A(x_K), (B,) float64
+    shift: Tensor  # g(x_K), (B,) float64
 
 
 def _annealing(
@@ -318,7 +295,7 @@ def _annealing(
 ) -> tuple[list[float], _AnnealingPath, torch.Generator]:
     """What a forward or reverse run needs: the betas, the path and the generator (all checked)."""
     betas = _check_schedule(schedule, num_betas).tolist()
-    return betas, _AnnealingPath(model, _base_biases(model, data, base)), resolve_generator(generator)
+    return betas, _AnnealingPath(model, _base_parameters(model, data, base)), resolve_generator(generator)
 
 
 def can_reverse_anneal(model: EnergyModel) -> bool:
@@ -336,17 +313,27 @@ def _summed_class(model: EnergyModel) -> tuple[int, ...]:
     return (hidden or classes or [()])[0]
 
 
-def _base_biases(model: EnergyModel, data: Tensor | None, base: str | None) -> list[Tensor]:
-    """Biases of the base model: visible log-odds of the data's base rates (or zero), hidden zero."""
-    biases = [torch.zeros_like(b.detach()) for b in model.biases()]
+def _base_parameters(model: EnergyModel, data: Tensor | None, base: str | None) -> dict[str, Tensor]:
+    """The base model's layer parameters, keyed like ``model.named_parameters()``: zero, and with
+    ``base="data"`` the visible bias at the log-odds of the data's base rates (binary visible units)."""
+    parameters = {
+        name: torch.zeros_like(p.detach())
+        for name, p in model.named_parameters()
+        if name.startswith("layers.")
+    }
     if base is None:
         base = "uniform" if data is None else "data"
     if base == "uniform":
-        return biases
+        return parameters
     if base != "data":
         raise ValueError(f"base must be 'data' or 'uniform', got {base!r}")
     if data is None:
         raise ValueError("base='data' needs data= (training data for the base rates); or pass base='uniform'")
+    if "layers.0.bias" not in parameters or model.supports[0] != (0.0, 1.0):
+        raise ValueError(
+            "base='data' sets a binary visible layer's bias from the data's base rates; layer 0 is a "
+            f"{type(model.layers[0]).__name__}: use base='uniform'"
+        )
     data = check_batch("data", data, model.sizes[0])
     rates = data.detach().to(torch.float64).mean(0)
     clipped = rates.clamp(RATE_CLIP, 1.0 - RATE_CLIP)
@@ -357,8 +344,8 @@ def _base_biases(model: EnergyModel, data: Tensor | None, base: str | None) -> l
             "(constant units); clipped for the base model",
             stacklevel=5,  # the caller of ais_log_partition (behind _annealing and the no_grad wrapper)
         )
-    biases[0] = torch.logit(clipped).to(biases[0].dtype)
-    return biases
+    parameters["layers.0.bias"] = torch.logit(clipped).to(model.dtype)
+    return parameters
 
 
 def _check_schedule(schedule, num_betas: int) -> Tensor:
@@ -436,9 +423,33 @@ def ais_log_partition(
     return Estimate.from_log_weights(log_weights, path.log_z_base, len(betas))
 
 
-# Mean-field proposal probabilities are kept inside [PROPOSAL_CLIP, 1 - PROPOSAL_CLIP] so that
-# every hidden state can be proposed (an importance sampler needs full support).
-PROPOSAL_CLIP = 1e-3
+def _start_from_mean_field(
+    model: EnergyModel,
+    v: Tensor,
+    started: Sequence[int],
+    states: list[Tensor | None],
+    num_chains: int,
+    generator: torch.Generator,
+) -> Tensor:
+    """Draw the ``started`` layers (mutually uncoupled) of the reverse chains; return the
+    log-probability ``(B * num_chains,)`` float64 of the draws under the proposal.
+
+    The proposal is each layer's own conditional given the mean-field marginals of its neighbours,
+    in float64 (binary units: independent units at the mean-field marginals themselves). Its
+    support is every state, as an importance sampler needs.
+    """
+    marginals, dtype = MeanField(model)(v), model.dtype
+    wide = {name: p.detach().to(torch.float64) for name, p in model.named_parameters()}
+    log_q = torch.zeros(v.shape[0] * num_chains, dtype=torch.float64)
+    with substituted(model, wide):
+        source = {j: x.detach().to(torch.float64) for j, x in enumerate(marginals)}
+        for i in started:
+            layer = model.layers[i]
+            input = model.input_or_zeros(source, i).repeat_interleave(num_chains, 0)
+            x = layer.sample(input, generator)
+            log_q += layer.log_probability(x, input)
+            states[i] = x.to(dtype)
+    return log_q
 
 
 @torch.no_grad()
@@ -477,7 +488,7 @@ def reverse_ais_log_likelihood(
         ``(B,)`` float64 estimates of ``log p(v)``, detached.
     """
     check_model(model)
-    v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
+    v = model.checked("v", v)
     num_chains = check_size("num_chains", num_chains)
     if not can_reverse_anneal(model):
         raise ValueError(
@@ -490,13 +501,7 @@ def reverse_ais_log_likelihood(
     log_weights = torch.zeros(states[0].shape[0], dtype=torch.float64)
     started = [i for i in path.kept if i != 0]
     if started:
-        marginals = MeanField(model)(v)
-        for i in started:
-            probabilities = (
-                marginals[i].clamp(PROPOSAL_CLIP, 1.0 - PROPOSAL_CLIP).repeat_interleave(num_chains, 0)
-            )
-            states[i] = torch.bernoulli(probabilities, generator=generator)
-            log_weights -= F.bernoulli_log_probability(states[i], probabilities)
+        log_weights -= _start_from_mean_field(model, v, started, states, num_chains, generator)
     terms = path.terms(states)
     log_weights += path.log_f(1.0, terms) - path.log_z_base
     uniforms = F.Uniforms(generator, model.dtype, UNIFORM_BLOCK)

@@ -2,17 +2,20 @@
 
 from __future__ import annotations
 
-from collections.abc import Collection, Mapping, Sequence
+from collections.abc import Callable, Collection, Iterable, Mapping, Sequence
 
 import torch
 from torch import Tensor, nn
+from torch.nn.utils import parametrize
 
-from .._checks import check_batch, check_index, check_positive_real, check_size, check_states
+from .._checks import check_batch, check_data, check_index, check_positive_real, check_size, check_states
 from .._random import resolve_generator
 from . import functional as F
-from .couplings import DenseCoupling, LateralCoupling
-from .graph import UpdateSchedule, check_schedule, colour_classes, first_coupled_pair
-from .units import BinaryLayer
+from .couplings import Coupling, DenseCoupling
+from .graph import UpdateSchedule, check_schedule, colour_classes, first_coupled_pair, is_chain
+from .parameters import substituted
+from .statistics import Statistics
+from .units import BinaryLayer, UnitLayer
 
 __all__ = ["EnergyModel", "dbm", "rbm"]
 
@@ -35,7 +38,7 @@ class EnergyModel(nn.Module):
         - ``states``: a list with one ``(B, n_i)`` tensor per layer, values in [0, 1].
         - ``energy(states)``, ``free_energy(v)``: ``(B,)``; ``model(v)`` is ``free_energy(v)`` and
           ``model(states)`` is ``energy(states)``.
-        - ``conditional_logits(states, i)``: ``(B, n_i)``.
+        - ``conditional_input(states, i)``, ``conditional_mean(states, i)``: ``(B, n_i)``.
 
     Attributes:
         layers, couplings: ``nn.ModuleList`` of the modules above.
@@ -56,6 +59,10 @@ class EnergyModel(nn.Module):
         self.layers = nn.ModuleList(layers)
         self.couplings = nn.ModuleList(couplings)
         self.edges: tuple[tuple[int, int], ...] = tuple((c.a, c.b) for c in couplings)
+        # The couplings touching each layer, with their ends.
+        self._touching: list[list[tuple[Coupling, tuple[int, int]]]] = [
+            [(c, e) for c, e in zip(couplings, self.edges) if i in e] for i in range(len(layers))
+        ]
         self.schedule = UpdateSchedule(
             classes=colour_classes(len(layers), self.edges),
             unitwise=frozenset(a for a, b in self.edges if a == b),
@@ -80,14 +87,36 @@ class EnergyModel(nn.Module):
     @property
     def dtype(self) -> torch.dtype:
         """The dtype of every parameter (float32 unless converted, e.g. by ``.double()``)."""
-        return self.layers[0].bias.dtype
+        for module in (*self.layers, *self.couplings):  # a direct look first: asked on every call
+            for parameter in module._parameters.values():
+                if parameter is not None:
+                    return parameter.dtype
+        parameter = next(self.parameters(), None)
+        return torch.get_default_dtype() if parameter is None else parameter.dtype
+
+    def checked(
+        self, name: str, x: object, layer: int = 0, *, batch: int | None = None, convert: bool = False
+    ) -> Tensor:
+        """``x`` checked as a ``(B, n_layer)`` batch of the layer's states: the model's dtype, within
+        the layer's ``support`` (and ``batch`` rows when given); bool or integer data is cast. With
+        ``convert``, numpy arrays and floating data of another precision are cast too (the
+        conveniences: ``fit``, ``pretrain``, ``evaluate``). Raises naming ``name``."""
+        size, support = self.sizes[layer], self.layers[layer].support
+        if convert:
+            return check_data(name, x, size, dtype=self.dtype, batch=batch, support=support)
+        return check_batch(name, x, size, dtype=self.dtype, batch=batch, support=support)
+
+    @property
+    def supports(self) -> tuple[tuple[float, float] | None, ...]:
+        """The range of values each layer's states take (``UnitLayer.support``)."""
+        return tuple(layer.support for layer in self.layers)
 
     def biases(self) -> list[Tensor]:
-        """The ``(n_i,)`` bias of every layer."""
+        """The ``(n_i,)`` bias of every layer (binary layers)."""
         return [layer.bias for layer in self.layers]
 
     def weights(self) -> list[Tensor]:
-        """The weight of every coupling as it enters the energy (lateral: symmetric, zero diagonal)."""
+        """The weight of every coupling as it enters the energy (built-in couplings)."""
         return [coupling.weight for coupling in self.couplings]
 
     def reset_parameters(self, generator: torch.Generator | None = None) -> None:
@@ -107,9 +136,9 @@ class EnergyModel(nn.Module):
 
     @torch.no_grad()
     def _weights_fingerprint(self) -> tuple[tuple[float, float], ...]:
-        """Sum and sum of squares of every weight, taken in float32 so that a dtype round trip
-        (``.double()``, ``.float()``) keeps it; any training step changes it."""
-        values = [w.detach().float().double() for w in self.weights()]
+        """Sum and sum of squares of every coupling parameter, taken in float32 so that a dtype round
+        trip (``.double()``, ``.float()``) keeps it; any training step changes it."""
+        values = [w.detach().float().double() for c in self.couplings for w in c.parameters()]
         return tuple((float(w.sum()), float(w.square().sum())) for w in values)
 
     def forward(self, x: Tensor | Sequence[Tensor]) -> Tensor:
@@ -123,19 +152,147 @@ class EnergyModel(nn.Module):
 
     def energy(self, states: Sequence[Tensor]) -> Tensor:
         """Energy ``(B,)`` of joint states (one ``(B, n_i)`` tensor per layer)."""
-        states = check_states("states", states, self.sizes, self.dtype)
-        return F.energy(states, self.biases(), self.weights(), self.edges)
+        states = check_states("states", states, self.sizes, self.dtype, self.supports)
+        return self.joint_energy(states)
 
-    def conditional_logits(self, states: Sequence[Tensor], layer: int) -> Tensor:
-        """Logits ``(B, n_layer)`` of ``p(x_layer,j = 1 | every other unit)``.
+    def joint_energy(self, states: Sequence[Tensor] | Mapping[int, Tensor]) -> Tensor:
+        """:meth:`energy` without checks, of the layers in ``states`` and the couplings among them
+        (all of them for full joint states)."""
+        present = range(len(self.layers)) if not isinstance(states, Mapping) else states.keys()
+        total = None
+        for i in present:
+            term = self.layers[i].energy(states[i])
+            total = term if total is None else total + term
+        for coupling, (a, b) in zip(self.couplings, self.edges):
+            if a in present and b in present:
+                total = total + coupling.energy(states[a], states[b])
+        return total
 
-        Without lateral couplings the units of the layer are independent given the other
-        layers and the layer's own state is not used; with them each unit's logit depends on
-        the other units of its layer.
+    def statistics(self, states: Sequence[Tensor], weights: Tensor | None = None) -> Statistics:
+        """:class:`Statistics` of joint states (one ``(B, n_i)`` tensor per layer, or marginals):
+        every module's average ``-dE/dtheta``, keyed like ``named_parameters()``; weighted by
+        ``weights`` ``(B,)`` (summing to one) when given. Not checked: the phases call it."""
+        out = Statistics()
+        for i, layer in enumerate(self.layers):
+            for name, value in _pulled_back(layer, layer.statistics(states[i], weights)):
+                out["layers." + str(i) + "." + name] = value
+        for k, (coupling, (a, b)) in enumerate(zip(self.couplings, self.edges)):
+            for name, value in _pulled_back(coupling, coupling.statistics(states[a], states[b], weights)):
+                out["couplings." + str(k) + "." + name] = value
+        return out
+
+    def layer_input(
+        self,
+        states: Sequence[Tensor] | Mapping[int, Tensor],
+        target: int,
+        *,
+        lateral: bool = True,
+        scale: float | Tensor | None = None,
+        skip: Collection[int] = (),
+    ) -> Tensor | None:
+        """The input ``(B, n_target)`` every coupling sends to layer ``target`` (its own lateral one
+        too unless ``lateral=False``; none from the layers in ``skip``), times ``scale`` (a number or
+        ``(B,)``); ``None`` when none does. Only the layers coupled to ``target`` need to be in
+        ``states``; not checked."""
+        total = None
+        for coupling, (a, b) in self._touching[target]:
+            if (a == b and not lateral) or (b if target == a else a) in skip:
+                continue
+            source = states[b if target == a else a]
+            total = (
+                coupling.input_to(target, source)
+                if total is None
+                else coupling.add_input(target, source, total)
+            )
+        if total is not None and scale is not None:
+            total = total * (scale.view(-1, 1) if isinstance(scale, Tensor) else scale)
+        return total
+
+    def input_or_zeros(
+        self,
+        states: Sequence[Tensor] | Mapping[int, Tensor],
+        target: int,
+        scale: float | Tensor | None = None,
+        batch: int | None = None,
+    ) -> Tensor:
+        """:meth:`layer_input` as a ``(B, n_target)`` tensor, zeros where no coupling touches the layer
+        (``B`` from the first state, or ``batch`` when given: states may then be empty)."""
+        input = self.layer_input(states, target, scale=scale)
+        if batch is None:
+            present = states.values() if isinstance(states, Mapping) else states
+            batch = next(x for x in present if x is not None).shape[0]
+        if input is None:
+            return torch.zeros(batch, self.sizes[target], dtype=self.dtype)
+        return input.expand(batch, -1)
+
+    def lateral_coupling(self, layer: int) -> Coupling | None:
+        """The coupling within ``layer``, if any."""
+        return next((c for c, (a, b) in self._touching[layer] if a == b), None)
+
+    def update_layer(
+        self,
+        states: Sequence[Tensor] | Mapping[int, Tensor],
+        target: int,
+        conditional: Callable[[UnitLayer, Tensor], Tensor],
+        *,
+        extra: Tensor | None = None,
+        observed: tuple[Tensor, Tensor] | None = None,
+        scale: float | Tensor | None = None,
+        by_class: bool = True,
+        skip: Collection[int] = (),
+    ) -> Tensor:
+        """New state ``(B, n_target)`` of layer ``target``: ``conditional(layer, input)`` (its mean
+        for mean field, a draw for Gibbs sampling) of the input from the current ``states``.
+
+        ``extra`` ``(B, n)`` is added to the input (what clamped layers in ``skip`` send, computed once
+        by the caller). ``scale`` multiplies
+        what the couplings send (an inverse temperature). Without a lateral coupling, or with
+        ``by_class=False``, every unit is updated at once; otherwise the lateral coupling's unit
+        classes are updated in turn, each from the newest values of the others, the lateral input
+        kept up to date with the coupling's ``input_change``. Out of place: autograd can
+        differentiate it. ``observed = (mask, values)``: units where ``mask`` is True keep ``values``.
+        """
+        layer = self.layers[target]
+        lateral = self.lateral_coupling(target) if by_class else None
+
+        def keep_observed(new: Tensor) -> Tensor:
+            return new if observed is None else torch.where(observed[0], observed[1], new)
+
+        base = self.layer_input(states, target, lateral=lateral is None, scale=scale, skip=skip)
+        if extra is not None:
+            base = extra if base is None else base + extra
+        if base is None:  # no coupling touches the layer; batch of one when no state is given
+            first = next(iter(states.values() if isinstance(states, Mapping) else states), None)
+            base = torch.zeros(1 if first is None else first.shape[0], layer.size, dtype=self.dtype)
+        if lateral is None:
+            return keep_observed(conditional(layer, base))
+        current = states[target]
+        factor = 1.0 if scale is None else (scale.view(-1, 1) if isinstance(scale, Tensor) else scale)
+        lateral_input = lateral.input_to(target, current) * factor
+        for units in lateral.unit_classes():
+            drawn = keep_observed(conditional(layer, base + lateral_input))
+            chosen = torch.zeros(layer.size, dtype=torch.bool)
+            chosen[units] = True
+            new = torch.where(chosen, drawn, current)
+            lateral_input = lateral_input + lateral.input_change(target, new - current, units) * factor
+            current = new
+        return current
+
+    def conditional_input(self, states: Sequence[Tensor], layer: int) -> Tensor:
+        """The input ``(B, n_layer)`` to ``layer`` from every other unit: ``-dC/dx_layer`` summed over
+        its couplings, so that ``p(x_layer | rest) ∝ exp(-U(x_layer) + x_layer . input)`` unit by unit
+        when the layer has no lateral coupling (binary units: the logits are ``bias + input``).
+        With a lateral coupling each unit's input depends on the other units of its layer.
         """
         layer = check_index("layer", layer, len(self.layers))
-        states = check_states("states", states, self.sizes, self.dtype)
-        return F.layer_logits(states, layer, self.biases(), self.weights(), self.edges)
+        states = check_states("states", states, self.sizes, self.dtype, self.supports)
+        return self.input_or_zeros(states, layer)
+
+    def conditional_mean(self, states: Sequence[Tensor], layer: int) -> Tensor:
+        """``E[x_layer | every other unit]`` ``(B, n_layer)`` unit by unit: the layer's ``mean`` of
+        :meth:`conditional_input` (binary units: ``p(x_j = 1 | rest)``)."""
+        input = self.conditional_input(states, layer)  # checks the index first
+        return self.layers[layer].mean(input)
 
     @property
     def has_free_energy(self) -> bool:
@@ -170,14 +327,30 @@ class EnergyModel(nn.Module):
         self.check_summable(states.keys())
         batch, checked = None, {}
         for i, x in states.items():
-            checked[i] = check_batch(names[i], x, self.sizes[i], dtype=self.dtype, batch=batch)
+            checked[i] = self.checked(names[i], x, i, batch=batch)
             batch = x.shape[0]
         states = checked
-        biases, weights = self.biases(), self.weights()
-        if dtype is not None:
-            biases, weights = [b.to(dtype) for b in biases], [w.to(dtype) for w in weights]
-            states = {i: x.to(dtype) for i, x in states.items()}
-        return F.marginal_free_energy(states, biases, weights, self.edges)
+        if dtype is None or dtype == self.dtype:
+            return self.summed_free_energy(states)
+        # Another precision: the modules and states cast (the cast is differentiable).
+        cast = {name: p.to(dtype) for name, p in self.named_parameters()}
+        with substituted(self, cast):
+            return self.summed_free_energy({i: x.to(dtype) for i, x in states.items()})
+
+    def summed_free_energy(
+        self, given: Mapping[int, Tensor], inputs: Mapping[int, Tensor] | None = None
+    ) -> Tensor:
+        """Free energy ``(B,)`` of the ``given`` layers with every other layer summed out by its
+        ``log_partition``, not checked: exact only when no coupling joins two summed-out layers
+        (:meth:`check_summable`). ``inputs`` passes the summed layers' inputs when already computed."""
+        total = self.joint_energy(given) if given else 0.0
+        for k, layer in enumerate(self.layers):
+            if k not in given:
+                input = self.layer_input(given, k) if inputs is None else inputs[k]
+                if input is None:
+                    input = torch.zeros(1, layer.size, dtype=self.dtype)
+                total = total - layer.log_partition(input)
+        return total
 
     def check_summable(self, kept: Collection[int]) -> None:
         """Raise ``ValueError`` unless every layer outside ``kept`` can be summed out in closed form."""
@@ -200,34 +373,64 @@ class EnergyModel(nn.Module):
         common practice, "A Practical Guide to Training Restricted Boltzmann Machines" (Hinton,
         UTML TR 2010-003, 2010), section 8; the pseudocount keeps constant units finite.
         """
-        data = check_batch("data", data, self.sizes[0])
+        if not isinstance(self.layers[0], BinaryLayer):
+            raise ValueError(
+                f"base-rate biases are for binary visible units; layer 0 is a {type(self.layers[0]).__name__}"
+            )
+        data = self.checked("data", data)
         pseudocount = check_positive_real("pseudocount", pseudocount)
         self.layers[0].bias.copy_(F.base_rate_logits(data, pseudocount))
+
+    def is_binary_chain(self) -> bool:
+        """Whether the model is what :func:`dbm` builds: binary layers, and unmasked dense couplings
+        ``(k, k + 1)`` in order (greedy pretraining and the feed-forward network need it)."""
+        return (
+            is_chain(len(self.layers), self.edges)
+            and all(isinstance(layer, BinaryLayer) for layer in self.layers)
+            and all(isinstance(c, DenseCoupling) and c.mask is None for c in self.couplings)
+        )
 
     def extra_repr(self) -> str:
         return f"sizes={list(self.sizes)}, edges={list(self.edges)}"
 
 
+def _pulled_back(module: nn.Module, statistics: Mapping[str, Tensor]) -> Iterable[tuple[str, Tensor]]:
+    """A module's statistics keyed by its parameters: a statistic of a tensor that another module
+    computes from a free tensor (``torch.nn.utils.parametrize``, such as tied copies of a bias) is
+    pulled back to that free tensor by the chain rule."""
+    if not parametrize.is_parametrized(module):
+        return statistics.items()
+    out = []
+    for name, value in statistics.items():
+        if name in module._parameters or not parametrize.is_parametrized(module, name):
+            out.append((name, value))
+            continue
+        free_name = f"parametrizations.{name}.original"
+        free = module.get_parameter(free_name).detach().requires_grad_()
+        with torch.enable_grad(), substituted(module, {free_name: free}):
+            (pulled,) = torch.autograd.grad(getattr(module, name), free, value)
+        out.append((free_name, pulled))
+    return out
+
+
 def _check_modules(layers, couplings):
     """Validate the layer and coupling modules of a model; return them as lists."""
     if isinstance(layers, nn.Module) or not isinstance(layers, Sequence) or not layers:
-        raise ValueError(f"layers must be a non-empty list of BinaryLayer, got {layers!r}")
+        raise ValueError(f"layers must be a non-empty list of UnitLayer modules, got {layers!r}")
     if isinstance(couplings, nn.Module) or not isinstance(couplings, Sequence):
         raise TypeError(f"couplings must be a list of couplings, got {type(couplings).__name__}")
     seen: dict[int, str] = {}
     for i, layer in enumerate(layers):
-        if not isinstance(layer, BinaryLayer):
-            raise TypeError(f"layers[{i}] must be a BinaryLayer, got {type(layer).__name__}")
+        if not isinstance(layer, UnitLayer):
+            raise TypeError(f"layers[{i}] must be a UnitLayer, got {type(layer).__name__}")
         if id(layer) in seen:
             raise ValueError(f"layers[{i}] is the same module as {seen[id(layer)]}")
         seen[id(layer)] = f"layers[{i}]"
-    dtypes = {layer.bias.dtype for layer in layers}
+        check_size(f"layers[{i}].size", getattr(layer, "size", None))
     joined: dict[frozenset[int], int] = {}
     for k, coupling in enumerate(couplings):
-        if not isinstance(coupling, DenseCoupling | LateralCoupling):
-            raise TypeError(
-                f"couplings[{k}] must be a DenseCoupling or LateralCoupling, got {type(coupling).__name__}"
-            )
+        if not isinstance(coupling, Coupling):
+            raise TypeError(f"couplings[{k}] must be a Coupling, got {type(coupling).__name__}")
         if id(coupling) in seen:
             raise ValueError(f"couplings[{k}] is the same module as {seen[id(coupling)]}")
         seen[id(coupling)] = f"couplings[{k}]"
@@ -238,12 +441,7 @@ def _check_modules(layers, couplings):
                     f"couplings[{k}] joins layer {end}, but the model has {len(layers)} "
                     f"layers (0..{len(layers) - 1})"
                 )
-        expected = (layers[a].size, layers[b].size)
-        if tuple(coupling.weight.shape) != expected:
-            raise ValueError(
-                f"couplings[{k}].weight has shape {tuple(coupling.weight.shape)} but layers "
-                f"{a} and {b} have sizes {expected}"
-            )
+        _check_coupling_shapes(k, coupling, layers[a].size, layers[b].size)
         pair = frozenset((a, b))
         if pair in joined:
             raise ValueError(
@@ -251,10 +449,37 @@ def _check_modules(layers, couplings):
                 "already joins; use one coupling per pair of layers"
             )
         joined[pair] = k
-        dtypes.add(coupling.weight.dtype)
+    dtypes = {p.dtype for module in (*layers, *couplings) for p in module.parameters()}
     if len(dtypes) > 1:
         raise TypeError(f"layers and couplings must share one dtype, got {sorted(map(str, dtypes))}")
     return list(layers), list(couplings)
+
+
+@torch.no_grad()
+def _check_coupling_shapes(k: int, coupling: Coupling, n_a: int, n_b: int) -> None:
+    """A coupling must send inputs of the right width both ways: probed with one zero state."""
+    weight = getattr(coupling, "weight", None)
+    if isinstance(weight, Tensor) and tuple(weight.shape) != (n_a, n_b):
+        raise ValueError(
+            f"couplings[{k}].weight has shape {tuple(weight.shape)} but layers "
+            f"{coupling.a} and {coupling.b} have sizes {(n_a, n_b)}"
+        )
+    dtype = next((p.dtype for p in coupling.parameters()), torch.get_default_dtype())
+    for target, source, n_source, n_target in (
+        (coupling.b, coupling.a, n_a, n_b),
+        (coupling.a, coupling.b, n_b, n_a),
+    ):
+        try:
+            shape = tuple(coupling.input_to(target, torch.zeros(1, n_source, dtype=dtype)).shape)
+        except RuntimeError as error:
+            raise ValueError(
+                f"couplings[{k}] cannot take a state of layer {source} ({n_source} units): {error}"
+            ) from None
+        if shape != (1, n_target):
+            raise ValueError(
+                f"couplings[{k}] sends an input of shape {shape} to layer {target}, which has "
+                f"{n_target} units: its weight does not match layers {coupling.a} and {coupling.b}"
+            )
 
 
 def rbm(

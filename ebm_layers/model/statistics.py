@@ -2,41 +2,30 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
-from dataclasses import dataclass
-
 from torch import Tensor
-
-from . import functional as F
 
 __all__ = ["Statistics"]
 
 
-@dataclass
-class Statistics:
-    """Layer means and coupling pair averages, from data, marginals or particles.
+class Statistics(dict[str, Tensor]):
+    """One tensor per model parameter, keyed by its name in ``model.named_parameters()``: the
+    average of ``-dE/dtheta`` over a phase's states (or marginals, or enumeration), shaped like
+    the parameter. A binary layer's bias gets the mean state, a dense weight the average
+    ``x_a^T x_b``. Built by ``model.statistics(states, weights)``; arithmetic is per key.
 
-    Attributes:
-        means: one ``(n_i,)`` tensor per layer: the average state (or marginal) of each unit.
-        pairs: one tensor per coupling, in ``model.couplings`` order: the average of
-            ``x_a^T x_b``, shape ``(n_a, n_b)`` (``(n, n)`` for a lateral coupling).
+    Examples::
+
+        >>> import torch, ebm_layers as el
+        >>> model = el.rbm(3, 2)
+        >>> stats = model.statistics([torch.ones(4, 3), torch.zeros(4, 2)])
+        >>> sorted(stats), stats["layers.0.bias"]
+        (['couplings.0.weight', 'layers.0.bias', 'layers.1.bias'], tensor([1., 1., 1.]))
     """
 
-    means: list[Tensor]
-    pairs: list[Tensor]
+    def __sub__(self, other: Statistics) -> Statistics:
+        return Statistics({name: value - other[name] for name, value in self.items()})
 
-    @classmethod
-    def from_states(
-        cls,
-        states: Sequence[Tensor],
-        edges: Sequence[tuple[int, int]],
-        sample_weights: Tensor | None = None,
-    ) -> Statistics:
-        """Averages over a batch of states ``(B, n_i)`` per layer; weighted when ``sample_weights``
-        ``(B,)`` (summing to one) is given."""
-        if sample_weights is None:
-            means = [x.mean(0) for x in states]
-        else:
-            means = [sample_weights @ x for x in states]
-        pairs = [F.pair_mean(states[a], states[b], sample_weights) for a, b in edges]
-        return cls(means, pairs)
+    def of_module(self, prefix: str) -> dict[str, Tensor]:
+        """The entries of one module, such as ``"layers.1"`` or ``"couplings.0"``, without the prefix."""
+        start = prefix + "."
+        return {name[len(start) :]: value for name, value in self.items() if name.startswith(start)}

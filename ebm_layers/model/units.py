@@ -1,17 +1,83 @@
-"""Unit types. A layer holds its bias and turns total inputs (logits) into means or samples."""
+"""Unit layers: the protocol every unit type follows (``UnitLayer``) and binary units."""
 
 from __future__ import annotations
 
 import torch
 from torch import Tensor, nn
+from torch.nn.functional import softplus
 
 from .._checks import check_size
 from . import functional as F
+from .parameters import autograd_statistics
 
-__all__ = ["BinaryLayer"]
+__all__ = ["BinaryLayer", "UnitLayer"]
 
 
-class BinaryLayer(nn.Module):
+class UnitLayer(nn.Module):
+    r"""Base class of unit layers: ``size`` units ``x`` with the layer's own energy term ``U(x)``.
+
+    The conditional of the layer given the rest of a model is
+    :math:`p(x \mid \text{input}) \propto e^{-U(x) + x \cdot \text{input}}`, where ``input`` is
+    ``-dC/dx`` summed over the couplings that touch the layer. Every algorithm of the library reaches
+    a unit type only through the methods below, so a subclass defines ``size``, its parameters and:
+
+    - ``energy(x)``: ``(B, n) -> (B,)``, the term ``U(x)``;
+    - ``mean(input)``: ``(B, n) -> (B, n)``, ``E[x | input]``;
+    - ``sample(input, generator)``: ``(B, n) -> (B, n)``, a draw of ``x`` given ``input`` using only
+      ``generator`` (a ``torch.Generator``);
+    - ``log_partition(input)``: ``(B, n) -> (B,)``, :math:`\log \sum_x e^{-U(x) + x \cdot \text{input}}`
+      (an integral for continuous units): sums the layer out in closed form;
+    - ``entropy(mean)``: ``(B, n) -> (B,)``, the entropy of the factorised distribution with that mean.
+
+    Discrete layers that enumeration may visit also define ``num_states`` and ``states(start, stop)``
+    (rows ``start..stop`` of the list of every joint state); a layer without them is summed out with
+    ``log_partition`` instead. ``support = (low, high)`` bounds the values data and states may take
+    (``None``: unbounded). ``statistics`` has a generic default by autograd of ``energy``.
+
+    Annealing and tempering interpolate a layer's parameters (``beta * theta + (1 - beta) * theta_0``,
+    possibly one row per chain); that follows the energy exactly when ``U`` is linear in the
+    parameters, as for the exponential-family units in natural parameters built in here.
+    """
+
+    size: int
+    support: tuple[float, float] | None = None
+
+    def energy(self, x: Tensor) -> Tensor:
+        raise NotImplementedError(f"{type(self).__name__} must define energy(x)")
+
+    def mean(self, input: Tensor) -> Tensor:
+        raise NotImplementedError(f"{type(self).__name__} must define mean(input)")
+
+    def sample(self, input: Tensor, generator: torch.Generator) -> Tensor:
+        raise NotImplementedError(f"{type(self).__name__} must define sample(input, generator)")
+
+    def log_partition(self, input: Tensor) -> Tensor:
+        raise NotImplementedError(f"{type(self).__name__} must define log_partition(input)")
+
+    def entropy(self, mean: Tensor) -> Tensor:
+        raise NotImplementedError(f"{type(self).__name__} must define entropy(mean)")
+
+    def statistics(self, x: Tensor, weights: Tensor | None = None) -> dict[str, Tensor]:
+        """``{parameter name: batch average of -dU/dtheta}`` over states ``x`` ``(B, n)``; weighted by
+        ``weights`` ``(B,)`` (summing to one) when given. Generic: autograd of ``energy``."""
+        return autograd_statistics(self, lambda: self.energy(x.detach()), weights)
+
+    def log_probability(self, x: Tensor, input: Tensor) -> Tensor:
+        """``log p(x | input)`` ``(B,)`` of states ``x`` under the layer's conditional:
+        ``-U(x) + x . input - log_partition(input)`` (a proposal's density in importance sampling)."""
+        return -self.energy(x) + (x * input).sum(-1) - self.log_partition(input)
+
+    def initial_states(self, batch: int, generator: torch.Generator, mean: Tensor | None = None) -> Tensor:
+        """``(batch, n)`` starting states of chains: a draw from the layer alone (zero input), or
+        the given ``mean`` ``(batch, n)`` itself (binary layers draw states with that mean)."""
+        if mean is not None:
+            return mean.clone()
+        parameter = next(self.parameters(), None)
+        dtype = torch.get_default_dtype() if parameter is None else parameter.dtype
+        return self.sample(torch.zeros(batch, self.size, dtype=dtype), generator)
+
+
+class BinaryLayer(UnitLayer):
     r"""A layer of ``size`` binary units ``x`` in {0, 1} with energy term :math:`-b \cdot x`.
 
     Args:
@@ -19,7 +85,8 @@ class BinaryLayer(nn.Module):
         dtype, device: factory keywords as in ``torch.nn.Linear``.
 
     Shape:
-        - ``mean(logits)``, ``sample(logits, generator)``: ``(B, n) -> (B, n)``.
+        - ``mean(input)``, ``sample(input, generator)``: ``(B, n) -> (B, n)``;
+          ``energy(x)``, ``log_partition(input)``, ``entropy(mean)``: ``(B, n) -> (B,)``.
 
     Attributes:
         bias: learned ``(n,)`` bias, initialised to zero.
@@ -27,13 +94,15 @@ class BinaryLayer(nn.Module):
     Examples::
 
         >>> layer = BinaryLayer(3)
-        >>> layer.mean(torch.zeros(2, 3))
+        >>> layer.mean(torch.zeros(2, 3)).detach()  # sigmoid(bias + input), differentiable in the bias
         tensor([[0.5000, 0.5000, 0.5000],
                 [0.5000, 0.5000, 0.5000]])
     """
 
-    size: int
     bias: nn.Parameter
+    support = (0.0, 1.0)
+    # sample() also takes a functional.Uniforms block, so a sweep can draw all its uniforms at once.
+    takes_uniform_blocks = True
 
     def __init__(self, size: int, *, dtype: torch.dtype | None = None, device=None) -> None:
         super().__init__()
@@ -45,13 +114,48 @@ class BinaryLayer(nn.Module):
         """Zero bias."""
         nn.init.zeros_(self.bias)
 
-    def mean(self, logits: Tensor) -> Tensor:
-        """``p(x = 1) = sigmoid(logits)``, where ``logits`` is the total input including the bias."""
-        return torch.sigmoid(logits)
+    def energy(self, x: Tensor) -> Tensor:
+        """``-b . x`` per row."""
+        return -(x @ self.bias)
 
-    def sample(self, logits: Tensor, generator: torch.Generator) -> Tensor:
-        """Binary draw with ``p(x = 1) = sigmoid(logits)``; not differentiable."""
-        return F.bernoulli(logits, generator)
+    def mean(self, input: Tensor) -> Tensor:
+        """``p(x = 1) = sigmoid(b + input)``."""
+        return (input + self.bias).sigmoid_()  # in place on the sum: one tensor, one pass less
+
+    def sample(self, input: Tensor, generator: torch.Generator | F.Uniforms) -> Tensor:
+        """Binary draw with ``p(x = 1) = sigmoid(b + input)``; not differentiable."""
+        probabilities = self.mean(input)
+        return F.sample_bernoulli(
+            probabilities.detach() if probabilities.requires_grad else probabilities, generator
+        )
+
+    def log_partition(self, input: Tensor) -> Tensor:
+        """``sum_j softplus(b_j + input_j)``."""
+        return softplus(input + self.bias).sum(-1)
+
+    def entropy(self, mean: Tensor) -> Tensor:
+        """Entropy of independent Bernoulli units with these means (``0 log 0 = 0``)."""
+        return -(torch.xlogy(mean, mean) + torch.xlogy(1.0 - mean, 1.0 - mean)).sum(-1)
+
+    def statistics(self, x: Tensor, weights: Tensor | None = None) -> dict[str, Tensor]:
+        """``{"bias": mean of x}`` (weighted when ``weights`` is given)."""
+        return {"bias": x.mean(0) if weights is None else weights.to(x.dtype) @ x}
+
+    def initial_states(self, batch: int, generator: torch.Generator, mean: Tensor | None = None) -> Tensor:
+        """Every unit on with probability 1/2 whatever the bias, or with probability ``mean``."""
+        if mean is None:
+            mean = torch.full((batch, self.size), 0.5, dtype=self.bias.dtype)
+        return torch.bernoulli(mean, generator=generator)
+
+    @property
+    def num_states(self) -> int:
+        return 2**self.size
+
+    def states(self, start: int, stop: int) -> Tensor:
+        """Rows ``start..stop`` of every binary state, in counting order (unit 0 the lowest bit)."""
+        codes = torch.arange(start, stop)
+        bits = torch.arange(self.size)
+        return ((codes[:, None] >> bits) & 1).to(self.bias.dtype)
 
     def extra_repr(self) -> str:
         return f"{self.size}"

@@ -9,14 +9,15 @@ whatever the number of states.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 
 import torch
 from torch import Tensor, nn
 
 from .._checks import check_model, check_size
-from ..model import functional as F
 from ..model.energy_model import EnergyModel
 from ..model.graph import smallest_cover
+from ..model.parameters import substituted
 from ..model.statistics import Statistics
 
 __all__ = ["MAX_STATES", "ExactStatistics", "enumeration_cover", "exact_moments"]
@@ -27,13 +28,24 @@ _CHUNK_ELEMENTS = 2**20
 
 
 def enumeration_cover(model: EnergyModel, max_states: int = MAX_STATES) -> tuple[int, ...]:
-    """The layers an exact sum enumerates; ``ValueError`` when their states exceed ``max_states``."""
+    """The layers an exact sum enumerates; ``ValueError`` when their states exceed ``max_states``
+    or a coupling joins two layers that cannot be enumerated (no ``num_states``)."""
     check_size("max_states", max_states)
-    cover = smallest_cover(model.sizes, model.edges)
-    bits = sum(model.sizes[i] for i in cover)
-    if 2**bits > max_states:
+    bits = [
+        math.log2(layer.num_states) if hasattr(layer, "num_states") else math.inf for layer in model.layers
+    ]
+    cover = smallest_cover(bits, model.edges)
+    if math.isinf(sum(bits[i] for i in cover)):
+        missing = [i for i in cover if math.isinf(bits[i])]
         raise ValueError(
-            f"exact enumeration of this model needs 2^{bits} = {2**bits:,} states of layers "
+            f"exact enumeration needs the states of layers {missing}, whose unit types do not list "
+            "them (no num_states); estimate log Z with annealed importance sampling instead"
+        )
+    total = math.prod(model.layers[i].num_states for i in cover)
+    if total > max_states:
+        width = round(sum(bits[i] for i in cover))
+        raise ValueError(
+            f"exact enumeration of this model needs 2^{width} = {total:,} states of layers "
             f"{list(cover)} (sizes {[model.sizes[i] for i in cover]}), more than max_states="
             f"{max_states:,}; estimate log Z with annealed importance sampling instead"
         )
@@ -47,6 +59,20 @@ def binary_codes(start: int, stop: int, bits: int, dtype: torch.dtype = torch.fl
     return ((codes[:, None] >> torch.arange(bits, device=device)) & 1).to(dtype)
 
 
+def joint_states(model: EnergyModel, layers: Sequence[int], start: int, stop: int) -> dict[int, Tensor]:
+    """Rows ``start..stop`` of every joint state of ``layers``, one ``(rows, n_i)`` tensor each,
+    from the layers' own ``states`` lists; the first layer varies fastest."""
+    rows = torch.arange(start, stop)
+    out, stride = {}, 1
+    for i in layers:
+        count = model.layers[i].num_states
+        index = (rows // stride) % count
+        low, high = int(index.min()), int(index.max())
+        out[i] = model.layers[i].states(low, high + 1)[index - low]
+        stride *= count
+    return out
+
+
 @torch.no_grad()
 def exact_moments(
     model: EnergyModel, *, statistics: bool = True, max_states: int = MAX_STATES
@@ -56,39 +82,41 @@ def exact_moments(
     Computed in float64 from detached parameters; the result is float64 and detached.
     """
     cover = enumeration_cover(model, max_states)
-    biases = [b.detach().to(torch.float64) for b in model.biases()]
-    weights = [w.detach().to(torch.float64) for w in model.weights()]
-    device = biases[0].device
-    cover_sizes = [model.sizes[i] for i in cover]
-    summed_out = [i for i in range(len(biases)) if i not in cover]
-    bits, total = sum(cover_sizes), 2 ** sum(cover_sizes)
+    total = math.prod(model.layers[i].num_states for i in cover)
+    summed_out = [i for i in range(len(model.layers)) if i not in cover]
     rows = max(1, min(total, _CHUNK_ELEMENTS // sum(model.sizes)))
+    wide = {name: p.detach().to(torch.float64) for name, p in model.named_parameters()}
 
-    log_scale = torch.tensor(-math.inf, dtype=torch.float64, device=device)
-    weight_sum = torch.zeros((), dtype=torch.float64, device=device)
-    means = [torch.zeros_like(b) for b in biases]
-    pairs = [torch.zeros_like(w) for w in weights]
-    for start in range(0, total, rows):
-        cover_bits = binary_codes(start, min(start + rows, total), bits, device=device)
-        given = dict(zip(cover, cover_bits.split(cover_sizes, dim=1)))
-        summed_logits = {k: F.layer_logits(given, k, biases, weights, model.edges) for k in summed_out}
-        log_weights = -F.marginal_free_energy(given, biases, weights, model.edges, summed_logits)
-        # Running log-sum-exp: accumulators hold sums scaled by exp(-log_scale).
-        new_scale = torch.maximum(log_scale, log_weights.max())
-        rescale = torch.exp(log_scale - new_scale)
-        chunk_weights = torch.exp(log_weights - new_scale)
-        weight_sum = weight_sum * rescale + chunk_weights.sum()
-        if statistics:
-            # Summed-out layers enter through their exact conditional means given the cover.
-            full = [given[i] if i in given else torch.sigmoid(summed_logits[i]) for i in range(len(biases))]
-            chunk = Statistics.from_states(full, model.edges, chunk_weights)
-            means = [m * rescale + c for m, c in zip(means, chunk.means)]
-            pairs = [p * rescale + c for p, c in zip(pairs, chunk.pairs)]
-        log_scale = new_scale
+    log_scale = torch.tensor(-math.inf, dtype=torch.float64)
+    weight_sum = torch.zeros((), dtype=torch.float64)
+    sums: dict[str, Tensor] = {}
+    with substituted(model, wide):
+        for start in range(0, total, rows):
+            stop = min(start + rows, total)
+            given = {i: x.to(torch.float64) for i, x in joint_states(model, cover, start, stop).items()}
+            inputs = {k: model.input_or_zeros(given, k, batch=stop - start) for k in summed_out}
+            log_weights = -model.summed_free_energy(given, inputs)
+            # Running log-sum-exp: accumulators hold sums scaled by exp(-log_scale).
+            new_scale = torch.maximum(log_scale, log_weights.max())
+            rescale = torch.exp(log_scale - new_scale)
+            chunk_weights = torch.exp(log_weights - new_scale)
+            weight_sum = weight_sum * rescale + chunk_weights.sum()
+            if statistics:
+                # Summed-out layers enter through their exact conditional means given the cover.
+                full = [
+                    given[i] if i in given else model.layers[i].mean(inputs[i])
+                    for i in range(len(model.layers))
+                ]
+                chunk = model.statistics(full, chunk_weights)
+                sums = {
+                    name: sums[name] * rescale + value if name in sums else value
+                    for name, value in chunk.items()
+                }
+            log_scale = new_scale
     log_z = log_scale + torch.log(weight_sum)
     if not statistics:
         return log_z, None
-    return log_z, Statistics([m / weight_sum for m in means], [p / weight_sum for p in pairs])
+    return log_z, Statistics({name: value / weight_sum for name, value in sums.items()})
 
 
 class ExactStatistics(nn.Module):
@@ -109,7 +137,7 @@ class ExactStatistics(nn.Module):
 
         >>> import ebm_layers as el
         >>> stats = el.ExactStatistics(el.rbm(6, 3)).statistics()
-        >>> stats.pairs[0].shape
+        >>> stats["couplings.0.weight"].shape
         torch.Size([6, 3])
     """
 
@@ -120,10 +148,11 @@ class ExactStatistics(nn.Module):
         self.model = model
         self.max_states = max_states
 
-    def statistics(self) -> Statistics:
+    def statistics(self, v: Tensor | None = None, **kwargs) -> Statistics:
+        """The exact model Statistics (the batch ``v`` a negative phase receives is not used)."""
         _, stats = exact_moments(self.model, max_states=self.max_states)
         dtype = self.model.dtype
-        return Statistics([m.to(dtype) for m in stats.means], [p.to(dtype) for p in stats.pairs])
+        return Statistics({name: value.to(dtype) for name, value in stats.items()})
 
     def forward(self) -> Statistics:
         return self.statistics()

@@ -39,8 +39,8 @@ class FastWeightsSampler(PersistentSampler):
         fast_decay: factor in [0, 1) applied to the fast weights at every step (0.95 in the paper).
 
     Attributes:
-        fast_bias_<i>: buffer ``(n_i,)``; fast_weight_<k>: buffer, the shape of coupling ``k``'s weight.
-        last_bias_<i>, last_weight_<k>: buffers, the parameters at the previous call.
+        fast_<j>: buffer shaped like the ``j``-th of ``model.named_parameters()``, its fast weight.
+        last_<j>: buffers, the parameters at the previous call.
         following: 0-d bool buffer, whether ``last_*`` hold the parameters of a previous call.
     """
 
@@ -64,47 +64,56 @@ class FastWeightsSampler(PersistentSampler):
         if not 0.0 <= fast_decay < 1.0:
             raise ValueError(f"fast_decay must lie in [0, 1), got {fast_decay}")
         self.fast_scale, self.fast_decay = fast_scale, fast_decay
-        for kind, parameters in (("bias", model.biases()), ("weight", model.weights())):
-            for i, parameter in enumerate(parameters):
-                self.register_buffer(f"fast_{kind}_{i}", torch.zeros_like(parameter.detach()))
-                self.register_buffer(f"last_{kind}_{i}", torch.zeros_like(parameter.detach()))
+        for j, (_, parameter) in enumerate(model.named_parameters()):
+            self.register_buffer(f"fast_{j}", torch.zeros_like(parameter.detach()))
+            self.register_buffer(f"last_{j}", torch.zeros_like(parameter.detach()))
         self.register_buffer("following", torch.tensor(False))
+        self._register_load_state_dict_pre_hook(_rename_old_buffers, with_module=True)
 
-    @property
-    def fast_biases(self) -> list[Tensor]:
-        return [getattr(self, f"fast_bias_{i}") for i in range(len(self.model.layers))]
+    def _named(self) -> list[tuple[str, Tensor, Tensor, Tensor]]:
+        """``(name, parameter, fast, last)`` of every model parameter."""
+        return [
+            (name, parameter, getattr(self, f"fast_{j}"), getattr(self, f"last_{j}"))
+            for j, (name, parameter) in enumerate(self.model.named_parameters())
+        ]
 
-    @property
-    def fast_weights(self) -> list[Tensor]:
-        return [getattr(self, f"fast_weight_{k}") for k in range(len(self.model.couplings))]
-
-    def _sweep_parameters(self) -> dict[str, list[Tensor]]:
-        return {
-            "biases": [b + f for b, f in zip(self.model.biases(), self.fast_biases)],
-            "weights": [w + f for w, f in zip(self.model.weights(), self.fast_weights)],
-        }
+    def _sweep_parameters(self) -> dict[str, Tensor]:
+        return {name: parameter.detach() + fast for name, parameter, fast, _ in self._named()}
 
     @torch.no_grad()
-    def statistics(self) -> Statistics:
+    def statistics(self, v: Tensor | None = None, **kwargs) -> Statistics:
         """Move the fast weights by the parameters' change since the last call, then advance the
         chains by ``sweeps`` sweeps and return their :class:`Statistics` (detached)."""
-        named = [(f"bias_{i}", b) for i, b in enumerate(self.model.biases())]
-        named += [(f"weight_{k}", w) for k, w in enumerate(self.model.weights())]
         following = bool(self.following)
-        for name, parameter in named:
-            fast, last = getattr(self, f"fast_{name}"), getattr(self, f"last_{name}")
+        for _, parameter, fast, last in self._named():
             if following:
                 fast.mul_(self.fast_decay).add_(parameter - last, alpha=self.fast_scale)
             last.copy_(parameter)
         self.following.fill_(True)
-        return super().statistics()
+        return super().statistics(v, **kwargs)
 
     @torch.no_grad()
     def reset_fast_weights(self) -> None:
         """Set the fast weights to zero and forget the last parameters (the next call takes no step)."""
-        for fast in self.fast_biases + self.fast_weights:
+        for _, _, fast, _ in self._named():
             fast.zero_()
         self.following.fill_(False)
 
     def extra_repr(self) -> str:
         return f"{super().extra_repr()}, fast_scale={self.fast_scale}, fast_decay={self.fast_decay}"
+
+
+def _rename_old_buffers(module: FastWeightsSampler, state_dict, prefix: str, *args) -> None:
+    """Checkpoints written before the buffers were keyed by parameter (``fast_bias_<i>``,
+    ``fast_weight_<k>``, ...) load into ``fast_<j>`` / ``last_<j>``; a lateral coupling's old full
+    weight becomes the strict upper triangle of its free matrix."""
+    names = [name for name, _ in module.model.named_parameters()]
+    for kind in ("fast", "last"):
+        for old_key in [key for key in state_dict if key.startswith(f"{prefix}{kind}_bias_")]:
+            i = old_key.rsplit("_", 1)[1]
+            state_dict[f"{prefix}{kind}_{names.index(f'layers.{i}.bias')}"] = state_dict.pop(old_key)
+        for old_key in [key for key in state_dict if key.startswith(f"{prefix}{kind}_weight_")]:
+            k = old_key.rsplit("_", 1)[1]
+            j = next(j for j, name in enumerate(names) if name.startswith(f"couplings.{k}."))
+            value = state_dict.pop(old_key)
+            state_dict[f"{prefix}{kind}_{j}"] = value.triu(1) if "parametrizations" in names[j] else value

@@ -4,17 +4,19 @@
 from __future__ import annotations
 
 import math
-from collections.abc import Collection, Sequence
+from collections.abc import Collection, Mapping, Sequence
 
 import torch
 from torch import Tensor, nn
 from tqdm.auto import tqdm
 
-from .._checks import check_batch, check_count, check_example_index, check_model, check_size
+from .._checks import check_count, check_example_index, check_model, check_size
 from .._random import resolve_generator, track_generator_state
 from ..model import functional as F
 from ..model.energy_model import EnergyModel
+from ..model.parameters import substituted
 from ..model.statistics import Statistics
+from ..model.units import UnitLayer
 
 __all__ = ["DataParticles", "PersistentSampler", "gibbs_sweep"]
 
@@ -27,62 +29,59 @@ def gibbs_sweep(
     *,
     clamped: Collection[int] = (),
     keep_probabilities: bool = False,
-    biases: Sequence[Tensor] | None = None,
+    parameters: Mapping[str, Tensor] | None = None,
     inverse_temperature: float | Tensor = 1.0,
-    weights: Sequence[Tensor] | None = None,
 ) -> dict[int, Tensor]:
     """Advance ``states`` (one ``(B, n_i)`` per layer, replaced in the list) by one block Gibbs sweep.
 
     The colour classes of ``model.schedule`` are visited in turn; every layer of a class is drawn
-    from the states before the class update, ``schedule.unitwise`` layers unit by unit. Layers in
-    ``clamped`` keep their states. ``biases`` (one per layer) replace the model's and
-    ``inverse_temperature`` (a number, or a ``(B,)`` tensor: one per chain, with ``(B, n_i)``
-    biases to match) multiplies every logit: the sweep then samples
-    ``exp(-inverse_temperature * E'(x))`` with ``E'`` the model's energy under those biases (the
-    intermediate distributions of annealing); ``weights`` (one per coupling) replace the model's
-    weights likewise. Returns the conditional probabilities of the last
-    class's layers without lateral couplings when ``keep_probabilities``, else an empty dict.
-    The sweep's uniforms are drawn in one block from ``generator`` (or taken from ``Uniforms``).
+    by its ``sample`` from the states before the class update, a layer with a lateral coupling one
+    unit class at a time. Layers in ``clamped`` keep their states. ``parameters`` (keyed like
+    ``model.named_parameters()``) replace the model's for the sweep, and ``inverse_temperature``
+    (a number, or a ``(B,)`` tensor: one per chain) multiplies what the couplings send: the sweep
+    then samples ``exp(-sum_l U_l(x_l) - inverse_temperature * sum_c C_c(x))`` with the layers'
+    terms as ``parameters`` give them (annealing and tempering pass the layers' parameters already
+    interpolated). Returns the conditional means of the last class's layers without lateral
+    couplings when ``keep_probabilities``, else an empty dict.
+
+    Layers that can (``takes_uniform_blocks``) draw from one block of uniforms for the whole sweep
+    (or from the caller's :class:`~ebm_layers.model.functional.Uniforms` when one is given).
     """
-    biases = model.biases() if biases is None else biases
-    weights = model.weights() if weights is None else weights
-    edges = model.edges
     classes, unitwise = model.schedule.classes, model.schedule.unitwise
-    if not isinstance(generator, F.Uniforms):  # every uniform of the sweep in one block
-        drawn = [layer for layers in classes for layer in layers if layer not in clamped]
+    scale = (
+        None
+        if not isinstance(inverse_temperature, Tensor) and inverse_temperature == 1.0
+        else inverse_temperature
+    )
+    drawn = [layer for layers in classes for layer in layers if layer not in clamped]
+    blocks = all(getattr(model.layers[i], "takes_uniform_blocks", False) for i in drawn)
+    source: torch.Generator | F.Uniforms = generator
+    if isinstance(generator, F.Uniforms):  # a block shared with the caller's other draws
+        source = generator if blocks else generator.generator
+    elif blocks:
         batch = next(x.shape[0] for x in states if x is not None)
-        count = batch * sum(model.sizes[layer] for layer in drawn)
-        generator = F.Uniforms(generator, model.dtype, count)
+        source = F.Uniforms(generator, model.dtype, batch * sum(model.sizes[i] for i in drawn))
 
-    scaled = isinstance(inverse_temperature, Tensor) or inverse_temperature != 1.0
-
-    def conditional(logits: Tensor) -> Tensor:
-        if not scaled:
-            return torch.sigmoid(logits)
-        factor = inverse_temperature
-        if isinstance(factor, Tensor):  # one per chain, over a layer (B, n) or one unit's (B,) logits
-            factor = factor.view(-1, *(1,) * (logits.ndim - 1))
-        return torch.sigmoid(factor * logits)
-
-    def draw(logits: Tensor) -> Tensor:
-        return F.sample_bernoulli(conditional(logits), generator)
+    def draw(layer: UnitLayer, input: Tensor) -> Tensor:
+        return layer.sample(input, source)
 
     probabilities: dict[int, Tensor] = {}
-    for c, layers in enumerate(classes):
-        last = keep_probabilities and c == len(classes) - 1
-        new = {}
-        for layer in layers:
-            if layer in clamped:
-                continue
-            if last and layer not in unitwise:
-                probabilities[layer] = conditional(F.layer_logits(states, layer, biases, weights, edges))
-                new[layer] = F.sample_bernoulli(probabilities[layer], generator)
-            else:
-                new[layer] = F.update_layer(
-                    states, layer, biases, weights, edges, draw, unitwise=layer in unitwise
-                )
-        for layer, x in new.items():
-            states[layer] = x
+    with substituted(model, parameters or {}):
+        for c, layers in enumerate(classes):
+            last = keep_probabilities and c == len(classes) - 1
+            new = {}
+            for i in layers:
+                if i in clamped:
+                    continue
+                if last and i not in unitwise:
+                    layer = model.layers[i]
+                    input = model.input_or_zeros(states, i, scale)
+                    probabilities[i] = layer.mean(input)
+                    new[i] = layer.sample(input, source)
+                else:
+                    new[i] = model.update_layer(states, i, draw, scale=scale, by_class=i in unitwise)
+            for i, x in new.items():
+                states[i] = x
     return probabilities
 
 
@@ -148,7 +147,7 @@ class PersistentSampler(nn.Module):
             if init != "uniform":
                 raise ValueError(f"init must be 'uniform' or a (num_particles, n_0) tensor, got {init!r}")
         else:
-            init = check_batch("init", init, model.sizes[0], batch=self.num_particles).detach().clone()
+            init = model.checked("init", init, batch=self.num_particles, convert=True).detach().clone()
         if not isinstance(probabilities, bool):
             raise TypeError(f"probabilities must be a bool, got {probabilities!r}")
         self.model = model
@@ -172,29 +171,33 @@ class PersistentSampler(nn.Module):
     @torch.no_grad()
     def reset(self) -> None:
         """Draw fresh particles from ``init`` with the sampler's generator."""
-        dtype = self.model.dtype
-        probabilities = [torch.full_like(x, 0.5, dtype=dtype) for x in self.particles]
-        if isinstance(self.init, Tensor):
-            probabilities[0] = self.init.to(dtype)
-        self._set_particles([torch.bernoulli(p, generator=self.generator) for p in probabilities])
+        count, init = self.num_particles, self.init
+        self._set_particles(
+            [
+                layer.initial_states(count, self.generator, init.to(self.model.dtype))
+                if i == 0 and isinstance(init, Tensor)
+                else layer.initial_states(count, self.generator)
+                for i, layer in enumerate(self.model.layers)
+            ]
+        )
 
     @torch.no_grad()
     def _advance(self, sweeps: int, keep_probabilities: bool = False) -> dict[int, Tensor]:
         # The model may have been converted on its own (e.g. model.double()): follow its dtype.
         states = [x.to(self.model.dtype) for x in self.particles]
         probabilities: dict[int, Tensor] = {}
-        replaced = self._sweep_parameters()
+        parameters = self._sweep_parameters()
         for s in range(sweeps):
             last = keep_probabilities and s == sweeps - 1
             probabilities = gibbs_sweep(
-                self.model, states, self.generator, keep_probabilities=last, **replaced
+                self.model, states, self.generator, keep_probabilities=last, parameters=parameters
             )
         self._set_particles(states)
         return probabilities
 
-    def _sweep_parameters(self) -> dict[str, list[Tensor]]:
-        """Biases or weights the chains use in place of the model's (none here; see
-        :class:`~ebm_layers.fast_weights.FastWeightsSampler`)."""
+    def _sweep_parameters(self) -> dict[str, Tensor]:
+        """Parameters the chains use in place of the model's, keyed like ``named_parameters()``
+        (none here; see :class:`~ebm_layers.phases.fast_weights.FastWeightsSampler`)."""
         return {}
 
     def forward(self) -> list[Tensor]:
@@ -203,11 +206,13 @@ class PersistentSampler(nn.Module):
         return self.particles
 
     @torch.no_grad()
-    def statistics(self) -> Statistics:
-        """Advance by ``sweeps`` sweeps and return the particles' :class:`Statistics` (detached)."""
+    def statistics(self, v: Tensor | None = None, **kwargs) -> Statistics:
+        """Advance by ``sweeps`` sweeps and return the particles' :class:`Statistics` (detached).
+
+        As a negative phase it is handed the batch ``v``; persistent chains do not use it."""
         probabilities = self._advance(self.sweeps, self.probabilities)
         states = [probabilities.get(i, x) for i, x in enumerate(self.particles)]
-        return Statistics.from_states(states, self.model.edges)
+        return self.model.statistics(states)
 
     @torch.no_grad()
     def sample(
@@ -269,8 +274,8 @@ class DataParticles(nn.Module):
           An index repeated within a batch is stored once (the last copy).
 
     Attributes:
-        states_<i>: ``uint8`` buffer ``(N, n_i)`` of the hidden states of layer ``i >= 1``, drawn
-            uniformly at construction.
+        states_<i>: buffer ``(N, n_i)`` of the hidden states of layer ``i >= 1``, drawn by the
+            layer's ``initial_states`` at construction; ``uint8`` for discrete units in {0, 1}.
         generator_state: ``uint8`` buffer, the generator's state when ``state_dict()`` was taken.
 
     Examples::
@@ -279,7 +284,7 @@ class DataParticles(nn.Module):
         >>> g = torch.Generator().manual_seed(0)
         >>> particles = el.DataParticles(el.rbm(6, 3, generator=g), num_examples=50, generator=g)
         >>> v = torch.bernoulli(torch.full((4, 6), 0.5), generator=g)
-        >>> particles.statistics(v, torch.tensor([0, 7, 8, 49])).pairs[0].shape
+        >>> particles.statistics(v, torch.tensor([0, 7, 8, 49]))["couplings.0.weight"].shape
         torch.Size([6, 3])
     """
 
@@ -295,25 +300,27 @@ class DataParticles(nn.Module):
         self.model = model
         self.generator = resolve_generator(generator)
         track_generator_state(self)
-        for i, n in enumerate(model.sizes[1:], start=1):
-            uniform = torch.full((self.num_examples, n), 0.5)
-            self.register_buffer(
-                f"states_{i}", torch.bernoulli(uniform, generator=self.generator).to(torch.uint8)
-            )
+        for i, layer in enumerate(model.layers[1:], start=1):
+            states = layer.initial_states(self.num_examples, self.generator)
+            # Units with values 0 and 1 only are kept as uint8 (a quarter of float32's memory).
+            binary = layer.support == (0.0, 1.0) and hasattr(layer, "num_states")
+            self.register_buffer(f"states_{i}", states.to(torch.uint8) if binary else states)
 
     @torch.no_grad()
-    def statistics(self, v: Tensor, index: Tensor) -> Statistics:
+    def statistics(self, v: Tensor, index: Tensor | None = None) -> Statistics:
         """Clamp ``v`` ``(B, n_0)``, advance examples ``index`` ``(B,)``, return their Statistics."""
+        if index is None:
+            raise ValueError("index is required with DataParticles: pass objective(v, index=idx)")
         model = self.model
-        v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
+        v = model.checked("v", v)
         index = check_example_index("index", index, self.num_examples, v.shape[0])
         stored = [getattr(self, f"states_{i}") for i in range(1, len(model.sizes))]
         states = [v, *(x[index].to(model.dtype) for x in stored)]
         for _ in range(self.sweeps):
             gibbs_sweep(model, states, self.generator, clamped={0})
         for buffer, x in zip(stored, states[1:]):
-            buffer[index] = x.to(torch.uint8)
-        return Statistics.from_states(states, model.edges)
+            buffer[index] = x.to(buffer.dtype)
+        return model.statistics(states)
 
     def forward(self, v: Tensor, index: Tensor) -> Statistics:
         return self.statistics(v, index)

@@ -5,16 +5,17 @@ from __future__ import annotations
 import math
 import warnings
 from collections.abc import Callable, Collection, Mapping, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 
 import torch
 from torch import Tensor, nn
 
-from .._checks import check_batch, check_index, check_model, check_positive_real, check_real, check_size
-from ..model import functional as F
+from .._checks import check_index, check_model, check_positive_real, check_real, check_size
 from ..model.energy_model import EnergyModel
 from ..model.graph import UpdateSchedule
+from ..model.parameters import substituted
 from ..model.statistics import Statistics
+from ..model.units import UnitLayer
 
 __all__ = ["MeanField"]
 
@@ -163,28 +164,37 @@ class MeanField(nn.Module):
 
     @torch.no_grad()
     def statistics(
-        self, v: Tensor, clamp: Mapping[int, Tensor] | None = None, missing: Tensor | None = None
+        self,
+        v: Tensor,
+        clamp: Mapping[int, Tensor] | None = None,
+        missing: Tensor | None = None,
+        index: Tensor | None = None,
     ) -> Statistics:
         """:class:`Statistics` of the marginals (pairs ``mu_a^T mu_b / B``), detached."""
-        return Statistics.from_states(self(v, clamp, missing), self.model.edges)
+        if index is not None:
+            raise ValueError("index is only used with DataParticles; MeanField needs no index")
+        return self.model.statistics(self(v, clamp, missing))
 
     # -- the forward iteration -------------------------------------------------------------
 
     def _initial(self, problem: _Problem) -> Marginals:
+        model = self.model
         marginals = dict(problem.clamped)
-        biases, weights = problem.biases, problem.weights
         for i in problem.free:
             if self.init == "bottom-up":
-                below = [(e, w) for e, w in zip(problem.edges, weights) if i in e and min(e) < i]
-                logits = F.layer_logits(marginals, i, biases, [w for _, w in below], [e for e, _ in below])
+                above = [j for j in range(i, len(model.layers))]
+                input = model.layer_input(marginals, i, lateral=False, skip=above)
+                input = (
+                    torch.zeros(problem.batch, model.sizes[i], dtype=model.dtype) if input is None else input
+                )
                 # Below the top, a layer also gets input from above: doubling the bottom-up input
                 # stands in for it (the recognition pass of "Efficient Learning of Deep Boltzmann
-                # Machines", AISTATS 2010); doubled on the (B, n) logits, not on a copy of the weights.
-                if any(i in e and max(e) > i for e in problem.edges):
-                    logits = 2 * logits - biases[i]
-                start = torch.sigmoid(logits).expand(problem.batch, -1)
+                # Machines", AISTATS 2010).
+                if any(i in e and max(e) > i for e in model.edges):
+                    input = 2 * input
+                start = model.layers[i].mean(input).expand(problem.batch, -1)
             else:
-                start = biases[i].new_full((problem.batch, self.model.sizes[i]), self.init)
+                start = torch.full((problem.batch, model.sizes[i]), self.init, dtype=model.dtype)
             observed = problem.observed_units(i)
             marginals[i] = start if observed is None else torch.where(*observed, start)
         return marginals
@@ -264,19 +274,20 @@ class MeanField(nn.Module):
     ) -> Marginals:
         """Mean-field updates of ``layers`` from the current ``marginals``; those in ``unitwise``
         unit by unit, the others all units at once."""
-        return {
-            i: F.update_layer(
-                marginals,
-                i,
-                problem.biases,
-                problem.weights,
-                problem.edges,
-                torch.sigmoid,
-                problem.observed_units(i),
-                unitwise=i in unitwise,
-            )
-            for i in layers
-        }
+        model = self.model
+        with substituted(model, problem.parameters):
+            return {
+                i: model.update_layer(
+                    marginals,
+                    i,
+                    _mean,
+                    extra=problem.extra.get(i),
+                    observed=problem.observed_units(i),
+                    by_class=i in unitwise,
+                    skip=problem.skip,
+                )
+                for i in layers
+            }
 
     def _step(self, marginals: Marginals, problem: _Problem) -> Marginals:
         """One update of the iteration (a colour sweep, or a damped parallel step), out of place."""
@@ -366,7 +377,7 @@ class MeanField(nn.Module):
                         f"missing must have the shape of v, {tuple(v.shape)}, got {tuple(missing.shape)}"
                     )
                 v = torch.where(missing, 0.0, v)  # unknown values may be anything, NaN included
-        v = check_batch("v", v, model.sizes[0], dtype=model.dtype)
+        v = model.checked("v", v)
         if missing is not None and bool(missing.any()):
             clamped, observed = {}, (~missing, v)
         else:
@@ -380,11 +391,9 @@ class MeanField(nn.Module):
                 i = check_index("clamp layer", i, len(model.layers))
                 if i == 0:
                     raise ValueError("clamp must not contain layer 0: it is clamped to v")
-                clamped[i] = check_batch(
-                    f"clamp[{i}]", x, model.sizes[i], dtype=model.dtype, batch=v.shape[0]
-                )
+                clamped[i] = model.checked(f"clamp[{i}]", x, i, batch=v.shape[0])
         free = [i for i in range(len(model.layers)) if i not in clamped]
-        return _Problem(clamped, free, v.shape[0], model.biases(), model.weights(), model.edges, observed)
+        return _Problem(model, clamped, free, v.shape[0], observed)
 
     def extra_repr(self) -> str:
         damping = f", damping={self.damping}" if self.update == "parallel" else ""
@@ -396,18 +405,20 @@ class MeanField(nn.Module):
 
 @dataclass
 class _Problem:
-    """One call's inputs: clamped layers, free layers, parameters, and partly observed layer 0."""
+    """One call's inputs: clamped layers, free layers, partly observed layer 0, and (once reduced)
+    the constant input the clamped layers send to the free ones."""
 
+    model: EnergyModel
     clamped: Marginals
     free: list[int]
     batch: int
-    biases: list[Tensor]
-    weights: list[Tensor]
-    edges: Sequence[tuple[int, int]]  # of ``weights``
     observed: tuple[Tensor, Tensor] | None = None  # (mask, values) of layer 0 when values are missing
+    extra: Marginals = field(default_factory=dict)  # input from the clamped layers, once reduced
+    skip: tuple[int, ...] = ()  # the layers whose input is in ``extra``
+    parameters: dict[str, Tensor] = field(default_factory=dict)  # substituted (detached) parameters
 
     def requires_grad(self) -> bool:
-        tensors = [*self.biases, *self.weights, *self.clamped.values()]
+        tensors = [*self.model.parameters(), *self.clamped.values()]
         if self.observed is not None:
             tensors.append(self.observed[1])
         return any(x.requires_grad for x in tensors)
@@ -421,25 +432,20 @@ class _Problem:
         return self.observed if layer == 0 else None
 
     def reduced(self) -> _Problem:
-        """The same problem with the clamped layers folded into the free layers' biases.
+        """The same problem with what the clamped layers send computed once.
 
-        What a clamped layer sends to a free one does not change while the iteration runs, so it
-        is computed once: each free layer gets a ``(B, n_i)`` bias ``b_i + sum_m x_m W_mi`` over
-        its clamped neighbours ``m``, and only the couplings between free layers remain.
+        It does not change while the iteration runs: each free layer gets a ``(B, n_i)`` extra input
+        from its clamped neighbours, and the iteration recomputes only what free layers send.
         """
-        biases = list(self.biases)
-        for i in self.free:
-            inputs = [
-                (e, w)
-                for e, w in zip(self.edges, self.weights)
-                if i in e and _other_end(e, i) in self.clamped
-            ]
-            logits = F.layer_logits(
-                self.clamped, i, self.biases, [w for _, w in inputs], [e for e, _ in inputs]
-            )
-            biases[i] = logits.expand(self.batch, -1)
-        kept = [(e, w) for e, w in zip(self.edges, self.weights) if e[0] in self.free and e[1] in self.free]
-        return replace(self, biases=biases, weights=[w for _, w in kept], edges=[e for e, _ in kept])
+        model, skip = self.model, tuple(self.clamped)
+        extra = {}
+        with substituted(model, self.parameters):
+            for i in self.free:
+                free_layers = [j for j in range(len(model.layers)) if j not in self.clamped]
+                input = model.layer_input(self.clamped, i, lateral=False, skip=free_layers)
+                if input is not None:
+                    extra[i] = input.expand(self.batch, -1)
+        return replace(self, extra=extra, skip=skip)
 
     def detached(self) -> _Problem:
         """The same problem with every tensor detached (for the adjoint iteration's graph)."""
@@ -447,14 +453,14 @@ class _Problem:
         return replace(
             self,
             clamped={i: x.detach() for i, x in self.clamped.items()},
-            biases=[b.detach() for b in self.biases],
-            weights=[w.detach() for w in self.weights],
+            extra={i: x.detach() for i, x in self.extra.items()},
+            parameters={name: p.detach() for name, p in self.model.named_parameters()},
             observed=observed,
         )
 
 
-def _other_end(edge: tuple[int, int], layer: int) -> int:
-    return edge[1] if edge[0] == layer else edge[0]
+def _mean(layer: UnitLayer, input: Tensor) -> Tensor:
+    return layer.mean(input)
 
 
 def _max_change(new: Marginals, old: Marginals) -> float:

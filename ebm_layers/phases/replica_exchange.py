@@ -5,10 +5,12 @@ from __future__ import annotations
 
 import torch
 from torch import Tensor
+from torch.nn.utils import parametrize
 
-from .._checks import check_batch, check_size
+from .._checks import check_size
 from ..model import functional as F
 from ..model.energy_model import EnergyModel
+from ..model.parameters import substituted
 from .gibbs import PersistentSampler, gibbs_sweep
 
 __all__ = ["ReplicaExchangeSampler"]
@@ -73,7 +75,7 @@ class ReplicaExchangeSampler(PersistentSampler):
                 )
         base = torch.zeros(model.sizes[0], dtype=model.dtype)
         if data is not None:
-            data = check_batch("data", data, model.sizes[0], dtype=model.dtype)
+            data = model.checked("data", data)
             base = F.base_rate_logits(data, pseudocount=1.0).to(model.dtype)
         self.register_buffer("inverse_temperatures", betas)
         self.register_buffer("base_bias", base)
@@ -93,9 +95,9 @@ class ReplicaExchangeSampler(PersistentSampler):
             self._draw_hot()
 
     def _draw_hot(self) -> None:
-        for i in range(len(self.model.sizes)):
-            hot = getattr(self, f"hot_{i}")
-            setattr(self, f"hot_{i}", torch.bernoulli(torch.full_like(hot, 0.5), generator=self.generator))
+        for i, layer in enumerate(self.model.layers):
+            count = getattr(self, f"hot_{i}").shape[0]
+            setattr(self, f"hot_{i}", layer.initial_states(count, self.generator))
 
     @property
     def num_replicas(self) -> int:
@@ -111,13 +113,20 @@ class ReplicaExchangeSampler(PersistentSampler):
         model, count = self.model, self.num_particles
         layers = range(len(model.sizes))
         states = [torch.cat([getattr(self, f"hot_{i}"), self.particles[i]]).to(model.dtype) for i in layers]
-        betas = self.inverse_temperatures.to(model.dtype).repeat_interleave(count)  # (K P,)
-        # E_beta = beta * E' with E' the model's energy under biases b + (1 - beta) / beta * a: a
-        # Gibbs sweep of the model at inverse temperature beta (per row) with those biases.
-        biases = list(model.biases())
-        biases[0] = biases[0] + ((1.0 - betas) / betas)[:, None] * self.base_bias
+        # E_beta = beta * E + (1 - beta) * E_base: the couplings' inputs scaled by beta, the layers'
+        # parameters interpolated towards the base model's; one sweep per replica.
+        base = self._base_parameters()
+        target = {name: p.detach() for name, p in model.named_parameters() if name in base}
+        tempered = [
+            {name: beta * value + (1.0 - beta) * base[name] for name, value in target.items()}
+            for beta in self.inverse_temperatures.tolist()
+        ]
         for _ in range(sweeps):
-            gibbs_sweep(model, states, self.generator, biases=biases, inverse_temperature=betas)
+            for k, (beta, parameters) in enumerate(zip(self.inverse_temperatures.tolist(), tempered)):
+                rows = [x[k * count : (k + 1) * count] for x in states]
+                gibbs_sweep(model, rows, self.generator, parameters=parameters, inverse_temperature=beta)
+                for x, new in zip(states, rows):
+                    x[k * count : (k + 1) * count] = new
             self._swap(states)
         hot = (self.num_replicas - 1) * count
         for i in layers:
@@ -129,10 +138,29 @@ class ReplicaExchangeSampler(PersistentSampler):
         # probabilities given the rest have the same expectation as its states (Rao-Blackwell).
         schedule, particles = model.schedule, self.particles
         return {
-            i: torch.sigmoid(F.layer_logits(particles, i, model.biases(), model.weights(), model.edges))
+            i: model.layers[i].mean(model.input_or_zeros(particles, i))
             for i in schedule.classes[-1]
             if i not in schedule.unitwise
         }
+
+    def _base_parameters(self) -> dict[str, Tensor]:
+        """The base model's layer parameters: zero, the visible bias at the data's base rates."""
+        named = self.model.named_parameters()
+        base = {name: torch.zeros_like(p.detach()) for name, p in named if name.startswith("layers.")}
+        visible = self.model.layers[0]
+        if parametrize.is_parametrized(visible, "bias"):  # e.g. tied copies: the free tensor behind it
+            free = self.base_bias
+            for parametrization in reversed(visible.parametrizations.bias):
+                free = parametrization.right_inverse(free)
+            base["layers.0.parametrizations.bias.original"] = free
+        elif "layers.0.bias" in base:
+            base["layers.0.bias"] = self.base_bias
+        return base
+
+    def _base_energy(self, states: list[Tensor]) -> Tensor:
+        """The base model's energy ``(B,)``: the layers' own terms under the base parameters."""
+        with substituted(self.model, self._base_parameters()):
+            return sum(layer.energy(x) for layer, x in zip(self.model.layers, states))
 
     def _swap(self, states: list[Tensor]) -> None:
         """Metropolis swaps between neighbouring temperatures, in place on ``states``."""
@@ -142,7 +170,11 @@ class ReplicaExchangeSampler(PersistentSampler):
         if first >= replicas - 1:
             return
         lower, upper = slice(first, replicas - 1, 2), slice(first + 1, replicas, 2)  # the pairs (k, k + 1)
-        gap = (self.model.energy(states) + states[0] @ self.base_bias).to(torch.float64).view(replicas, count)
+        gap = (
+            (self.model.joint_energy(states) - self._base_energy(states))
+            .to(torch.float64)
+            .view(replicas, count)
+        )
         betas = self.inverse_temperatures
         log_ratio = (betas[lower] - betas[upper])[:, None] * (gap[lower] - gap[upper])  # (pairs, P)
         uniform = torch.rand(log_ratio.shape, dtype=torch.float64, generator=self.generator)

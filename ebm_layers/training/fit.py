@@ -23,11 +23,12 @@ from torch import Tensor
 from torch.utils.data import DataLoader, DistributedSampler, RandomSampler
 from tqdm.auto import tqdm
 
-from .._checks import check_count, check_data, check_model, check_positive_real, check_size
+from .._checks import check_count, check_model, check_positive_real, check_size
 from .._random import resolve_generator
 from ..evaluation.metrics import free_energy_gap
 from ..model.energy_model import EnergyModel
-from ..model.graph import is_chain
+from ..model.units import BinaryLayer
+from ..phases.contrastive_divergence import ContrastiveDivergence
 from ..phases.fast_weights import FastWeightsSampler
 from ..phases.gibbs import DataParticles, PersistentSampler
 from ..phases.mean_field import MeanField
@@ -129,6 +130,7 @@ def fit(
     pretrain_epochs: int | None = None,
     distributed: bool = False,
     mixing_aid: str | None = "auto",
+    negative: str = "persistent",
     stage: str = "training",
 ) -> FitResult:
     """Train ``model`` on ``data`` for ``epochs`` passes with the two-phase learning rule.
@@ -200,6 +202,9 @@ def fit(
             (:class:`ReplicaExchangeSampler`, 10 temperatures towards the data's base rates); see
             ``benchmarks/mixing.py`` for what each did on the demo data, ``benchmarks/defaults.py``
             on small data sets.
+        negative: the default objective's model phase: ``"persistent"`` (persistent chains, with
+            ``mixing_aid``) or ``"contrastive-divergence"`` (:class:`ContrastiveDivergence`, CD-1:
+            chains restarted at each batch, one sweep; ``mixing_aid`` must stay ``"auto"``).
         stage: the name of this run in the progress bar and in every history record
             (:func:`pretrain` names its RBMs ``"pretraining RBM k/L"``).
 
@@ -214,24 +219,34 @@ def fit(
         if batch_size is not None:
             raise ValueError(f"batch_size={batch_size} is set by the DataLoader; leave it None")
     else:
-        data = check_data("data", data, model.sizes[0], dtype=model.dtype)
+        data = model.checked("data", data, convert=True)
         batch_size = DEFAULT_BATCH_SIZE if batch_size is None else check_size("batch_size", batch_size)
     if validation is not None:
-        validation = check_data("validation", validation, model.sizes[0], dtype=model.dtype)
+        validation = model.checked("validation", validation, convert=True)
     callbacks = _check_callbacks(callbacks)
     generator = resolve_generator(generator)
     if not isinstance(distributed, bool):
         raise TypeError(f"distributed must be True or False, got {distributed!r}")
     rank, world = current_world() if distributed else (0, 1)
+    if negative not in NEGATIVE_PHASES:
+        raise ValueError(f"negative must be one of {NEGATIVE_PHASES}, got {negative!r}")
+    if negative == "contrastive-divergence" and mixing_aid != "auto":
+        raise ValueError(f"mixing_aid={mixing_aid!r} is for persistent chains, not negative={negative!r}")
     if objective is None:
         particle_generator = rank_generator(generator.initial_seed(), rank) if distributed else generator
-        sampler = _default_sampler(model, mixing_aid, particle_generator, data if loader is None else None)
+        if negative == "contrastive-divergence":
+            sampler = ContrastiveDivergence(model, steps=1, generator=particle_generator)
+        else:
+            sampler = _default_sampler(
+                model, mixing_aid, particle_generator, data if loader is None else None
+            )
         objective = TwoPhaseObjective(model, MeanField(model, init="bottom-up"), sampler)
     elif not isinstance(objective, TwoPhaseObjective):
         raise TypeError(f"objective must be a TwoPhaseObjective, got {type(objective).__name__}")
-    elif mixing_aid != "auto":
+    elif mixing_aid != "auto" or negative != "persistent":
         raise ValueError(
-            "mixing_aid chooses the default objective's sampler; with your own objective, build it in"
+            "mixing_aid and negative choose the default objective's sampler; with your own objective, "
+            "build it in"
         )
     elif objective.model is not model:
         raise ValueError("objective belongs to another model than the one given")
@@ -294,7 +309,7 @@ def fit(
             model, data, epochs=pretrain_epochs, batch_size=batch_size, progress=progress, generator=generator
         )
         result.pretraining = [stage.history for stage in stages]
-    elif loader is None and model.untrained() and not bool(model.layers[0].bias.detach().any()):
+    elif loader is None and model.untrained() and _zero_binary_visible_bias(model):
         model.init_visible_bias_from(data)
     if resume is None and loader is None and objective.centering and objective.offsets_unset:
         objective.init_offsets(data)
@@ -384,6 +399,7 @@ def fit(
 
 
 MIXING_AIDS = ("auto", None, "fast-weights", "replica-exchange")
+NEGATIVE_PHASES = ("persistent", "contrastive-divergence")
 
 
 def _default_sampler(
@@ -403,10 +419,21 @@ def _default_sampler(
     raise ValueError(f"mixing_aid must be one of {MIXING_AIDS}, got {mixing_aid!r}")
 
 
+def _zero_binary_visible_bias(model: EnergyModel) -> bool:
+    """Whether layer 0 is a binary layer whose bias is still zero (base rates may then set it)."""
+    visible = model.layers[0]
+    return isinstance(visible, BinaryLayer) and not bool(visible.bias.detach().any())
+
+
 def _is_small_rbm(model: EnergyModel) -> bool:
     """An RBM with at most ``SMALL_RBM_VISIBLE`` visible and ``SMALL_RBM_HIDDEN`` hidden units."""
     visible, hidden = model.sizes[0], model.sizes[-1]
-    return model.edges == ((0, 1),) and visible <= SMALL_RBM_VISIBLE and hidden <= SMALL_RBM_HIDDEN
+    return (
+        model.is_binary_chain()
+        and len(model.layers) == 2
+        and visible <= SMALL_RBM_VISIBLE
+        and hidden <= SMALL_RBM_HIDDEN
+    )
 
 
 def default_optimizer(
@@ -564,7 +591,7 @@ def _free_energy_gap(model: EnergyModel, validation: Tensor | None, seen: list[T
 
 def _pretrain_epochs(pretrain_epochs: int | None, model: EnergyModel, loader, resume) -> int:
     """Passes per RBM of the greedy pretraining this call runs (0: none)."""
-    deep_chain = len(model.layers) > 2 and is_chain(len(model.layers), model.edges)
+    deep_chain = len(model.layers) > 2 and model.is_binary_chain()
     if pretrain_epochs is None:
         fresh = deep_chain and resume is None and model.untrained()
         if fresh and loader is not None:

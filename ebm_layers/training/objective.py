@@ -5,19 +5,35 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
+from typing import Protocol, runtime_checkable
 
 import torch
 from torch import Tensor, nn
 
-from .._checks import check_batch, check_model, check_real
+from .._checks import check_model, check_real
+from ..model.couplings import DenseCoupling, LateralCoupling
 from ..model.energy_model import EnergyModel
 from ..model.statistics import Statistics
-from ..phases.exact import ExactStatistics
-from ..phases.gibbs import DataParticles, PersistentSampler
-from ..phases.mean_field import MeanField
+from ..model.units import BinaryLayer
+from ..phases.defaults import default_negative, default_positive
 from .distributed import on_any_rank, rank_average
 
-__all__ = ["Monitors", "TwoPhaseObjective", "weight_decay_groups"]
+__all__ = ["Monitors", "Phase", "TwoPhaseObjective", "weight_decay_groups"]
+
+
+@runtime_checkable
+class Phase(Protocol):
+    """What the objective asks of a phase: its model, and statistics of a batch.
+
+    ``statistics(v, **kwargs)`` returns :class:`Statistics` (keyed like the model's parameters); the
+    negative phase receives the batch too (contrastive divergence starts from it) and may ignore
+    it. Optional: ``after_step(difference)``, called with the data-minus-model Statistics once the
+    divergence guard has accepted a step.
+    """
+
+    model: EnergyModel
+
+    def statistics(self, v: Tensor, **kwargs) -> Statistics: ...
 
 
 class TwoPhaseObjective(nn.Module):
@@ -106,8 +122,8 @@ class TwoPhaseObjective(nn.Module):
     def __init__(
         self,
         model: EnergyModel,
-        positive: MeanField | DataParticles | None = None,
-        negative: PersistentSampler | ExactStatistics | None = None,
+        positive: Phase | None = None,
+        negative: Phase | None = None,
         *,
         sparsity_target: float | None = None,
         sparsity_cost: float = 0.1,
@@ -119,17 +135,18 @@ class TwoPhaseObjective(nn.Module):
     ) -> None:
         super().__init__()
         check_model(model)
-        positive = MeanField(model) if positive is None else positive
-        negative = PersistentSampler(model) if negative is None else negative
-        for name, phase, kinds in (
-            ("positive", positive, (MeanField, DataParticles)),
-            ("negative", negative, (PersistentSampler, ExactStatistics)),
-        ):
-            if not isinstance(phase, kinds):
-                expected = " or ".join(kind.__name__ for kind in kinds)
-                raise TypeError(f"{name} must be a {expected}, got {type(phase).__name__}")
+        positive = default_positive(model) if positive is None else positive
+        negative = default_negative(model) if negative is None else negative
+        for name, phase in (("positive", positive), ("negative", negative)):
+            if not callable(getattr(phase, "statistics", None)) or not hasattr(phase, "model"):
+                raise TypeError(
+                    f"{name} must be a phase: an object with .model and .statistics(v, **kwargs), "
+                    f"got {type(phase).__name__}"
+                )
             if phase.model is not model:
                 raise ValueError(f"{name} belongs to another model than the one given; build it from `model`")
+        if centering or sparsity_target is not None:
+            _check_built_in(model, "centering" if centering else "sparsity_target")
         if sparsity_target is not None:
             sparsity_target = check_real("sparsity_target", sparsity_target)
             if not 0.0 < sparsity_target < 1.0:
@@ -180,28 +197,20 @@ class TwoPhaseObjective(nn.Module):
         # divergence guard decides on all ranks together.
         self.process_group = None
 
-    def forward(self, v: Tensor, index: Tensor | None = None) -> Tensor:
-        """The surrogate loss of batch ``v`` ``(B, n_0)`` (``index`` ``(B,)`` with DataParticles)."""
+    def forward(self, v: Tensor, **kwargs) -> Tensor:
+        """The surrogate loss of batch ``v`` ``(B, n_0)``; keyword arguments go to both phases
+        (``index=`` for :class:`DataParticles`)."""
         model = self.model
-        with_index = isinstance(self.positive, DataParticles)
-        if with_index and index is None:
-            raise ValueError("index is required with DataParticles: pass objective(v, index=idx)")
-        if not with_index and index is not None:
-            raise ValueError("index is only used with DataParticles; MeanField needs no index")
         self.check_parameters()
         if isinstance(v, Tensor) and not (v.is_floating_point() or v.is_complex()):
             v = v.to(model.dtype)  # binary data kept as bool or uint8
-        data = self.positive.statistics(v, index) if with_index else self.positive.statistics(v)
-        fantasy = self.negative.statistics()
-        difference = Statistics(
-            [d - m for d, m in zip(data.means, fantasy.means)],
-            [d - m for d, m in zip(data.pairs, fantasy.pairs)],
-        )
+        data = self.positive.statistics(v, **kwargs)
+        fantasy = self.negative.statistics(v, **kwargs)
+        difference = data - fantasy
         coefficients, running = self._coefficients(difference, data, fantasy)
         # Linear in the parameters: d loss / d theta = -coefficient, an elementwise backward.
-        loss = -sum(_dot(b, c) for b, c in zip(model.biases(), coefficients.means))
-        for w, c, (a, b) in zip(model.weights(), coefficients.pairs, model.edges):
-            loss = loss - _dot(w, c) * (0.5 if a == b else 1.0)
+        parameters = dict(model.named_parameters())
+        loss = -sum(_dot(parameters[name], c) for name, c in coefficients.items())
         # Any non-finite statistic makes the loss non-finite (NaN and Inf propagate through it).
         finite = bool(torch.isfinite(loss))
         if self.process_group is not None and on_any_rank(not finite, self.process_group):
@@ -217,6 +226,10 @@ class TwoPhaseObjective(nn.Module):
             for buffer, value in running:
                 buffer.copy_(value)
         self.offsets_unset = False
+        for phase in (self.positive, self.negative):
+            after_step = getattr(phase, "after_step", None)
+            if after_step is not None:
+                after_step(difference)
         particles = getattr(self.negative, "particles", None)
         self.last = Monitors(
             difference=difference,
@@ -237,7 +250,7 @@ class TwoPhaseObjective(nn.Module):
             largest = max(-float(low), float(high))
             if not math.isfinite(largest):
                 raise FloatingPointError(f"parameter {name} holds non-finite values: {_LIKELY_CAUSE}")
-            if not name.endswith("bias") and largest > self.max_weight:
+            if name.startswith("couplings.") and largest > self.max_weight:
                 raise FloatingPointError(
                     f"{name} reached |w| = {largest:.4g}, above max_weight={self.max_weight:g}: "
                     f"{_LIKELY_CAUSE}"
@@ -252,35 +265,39 @@ class TwoPhaseObjective(nn.Module):
         pairs, copied in only once the step is accepted."""
         running = []
         coefficients = difference
+        layers = range(len(self.model.layers))
         if self.process_group is not None and (self.centering or self.sparsity_target is not None):
             # The running buffers follow the statistics of all ranks' data and particles together.
-            pooled = rank_average([*data.means, *fantasy.means], self.process_group)
-            data = Statistics(pooled[: len(data.means)], data.pairs)
-            fantasy = Statistics(pooled[len(data.means) :], fantasy.pairs)
+            names = [f"layers.{i}.bias" for i in layers]
+            pooled = rank_average([data[n] for n in names] + [fantasy[n] for n in names], self.process_group)
+            data = Statistics({**data, **dict(zip(names, pooled[: len(names)]))})
+            fantasy = Statistics({**fantasy, **dict(zip(names, pooled[len(names) :]))})
         if self.centering:
             offsets = self.offsets
-            coefficients = _centered(difference, offsets, self.model.edges)
+            coefficients = _centered(self.model, difference, offsets)
             rate = 1.0 - self.offset_decay
-            for c, d, m in zip(offsets, data.means, fantasy.means):
+            for i, c in zip(layers, offsets):
+                d, m = data[f"layers.{i}.bias"], fantasy[f"layers.{i}.bias"]
                 running.append((c, c + rate * ((d + m) / 2 - c)))
         if self.sparsity_target is None:
             return coefficients, running
-        means, pairs = list(coefficients.means), list(coefficients.pairs)
+        coefficients = Statistics(coefficients)
         deviation = {}
-        for i in range(1, len(means)):
+        for i in layers[1:]:
             buffer = getattr(self, f"sparsity_mean_{i}")
-            mean = self.sparsity_decay * buffer + (1.0 - self.sparsity_decay) * data.means[i]
+            mean = self.sparsity_decay * buffer + (1.0 - self.sparsity_decay) * data[f"layers.{i}.bias"]
             running.append((buffer, mean))
             deviation[i] = self.sparsity_cost * (mean - self.sparsity_target)
-            means[i] = means[i] - deviation[i]
+            coefficients[f"layers.{i}.bias"] = coefficients[f"layers.{i}.bias"] - deviation[i]
         for k, (a, b) in enumerate(self.model.edges):
             if a == b:
                 continue
+            name = f"couplings.{k}.weight"
             if b in deviation:
-                pairs[k] = pairs[k] - torch.outer(data.means[a], deviation[b])
+                coefficients[name] = coefficients[name] - torch.outer(data[f"layers.{a}.bias"], deviation[b])
             if a in deviation:
-                pairs[k] = pairs[k] - torch.outer(deviation[a], data.means[b])
-        return Statistics(means, pairs), running
+                coefficients[name] = coefficients[name] - torch.outer(deviation[a], data[f"layers.{b}.bias"])
+        return coefficients, running
 
     @torch.no_grad()
     def init_offsets(self, data: Tensor) -> None:
@@ -288,7 +305,7 @@ class TwoPhaseObjective(nn.Module):
         0.5), as "How to Center Deep Boltzmann Machines" (JMLR 2016) recommends."""
         if not self.centering:
             raise ValueError("init_offsets needs an objective built with centering=True")
-        data = check_batch("data", data, self.model.sizes[0], dtype=self.model.dtype)
+        data = self.model.checked("data", data)
         self.offset_0.copy_(data.mean(0))
         self.offsets_unset = False
 
@@ -311,7 +328,22 @@ class TwoPhaseObjective(nn.Module):
         return ", ".join(options)
 
 
-def _centered(difference: Statistics, offsets: Sequence[Tensor], edges) -> Statistics:
+def _check_built_in(model: EnergyModel, option: str) -> None:
+    """Centering and sparsity are written for binary layers with dense or lateral couplings."""
+    for i, layer in enumerate(model.layers):
+        if not isinstance(layer, BinaryLayer):
+            raise ValueError(
+                f"{option} works with BinaryLayer units; layers[{i}] is a {type(layer).__name__}"
+            )
+    for k, coupling in enumerate(model.couplings):
+        if not isinstance(coupling, DenseCoupling | LateralCoupling):
+            raise ValueError(
+                f"{option} works with DenseCoupling and LateralCoupling; couplings[{k}] is a "
+                f"{type(coupling).__name__}"
+            )
+
+
+def _centered(model: EnergyModel, difference: Statistics, offsets: Sequence[Tensor]) -> Statistics:
     """The centered learning rule in ordinary coordinates.
 
     A coupling's coefficient is the difference of centered covariances
@@ -319,22 +351,27 @@ def _centered(difference: Statistics, offsets: Sequence[Tensor], edges) -> Stati
     ``dm`` the mean differences. The centered bias coefficient is ``dm`` itself; since the ordinary
     bias is ``b = b' - W c_b`` (summed over neighbours), a step ``dW`` of the weights moves it by
     ``-dW c_b``, so each bias coefficient loses ``G c_b`` for every coupling, with ``G`` the weight
-    change per unit step. For a lateral coupling that change is ``G`` without its diagonal: the
-    free upper triangle's gradient is the whole off-diagonal coefficient (the 1/2 of the energy
-    term counted twice) and the diagonal stays zero.
+    change per unit step (zero outside a mask). A lateral coupling's statistic is the strict upper
+    triangle of its free matrix: its weight change is that triangle mirrored, diagonal zero.
     """
-    means = list(difference.means)
-    pairs = []
-    for (a, b), pair in zip(edges, difference.pairs):
-        dm_a, dm_b, c_a, c_b = difference.means[a], difference.means[b], offsets[a], offsets[b]
-        centered = pair - torch.outer(c_a, dm_b) - torch.outer(dm_a, c_b)
-        pairs.append(centered)
+    out = Statistics(difference)
+    means = {i: difference[f"layers.{i}.bias"] for i in range(len(model.layers))}
+    for k, (coupling, (a, b)) in enumerate(zip(model.couplings, model.edges)):
+        (name, pair), *_ = difference.of_module(f"couplings.{k}").items()
         if a == b:
-            means[a] = means[a] - (centered - torch.diag(centered.diagonal())) @ c_a
+            pair = pair + pair.mT  # the full symmetric average x^T x, diagonal zero
+        centered = pair - torch.outer(offsets[a], means[b]) - torch.outer(means[a], offsets[b])
+        if coupling.mask is not None:
+            centered = centered * coupling.mask
+        if a == b:
+            centered = centered - torch.diag(centered.diagonal())
+            out[f"couplings.{k}.{name}"] = centered.triu(1)
+            out[f"layers.{a}.bias"] = out[f"layers.{a}.bias"] - centered @ offsets[a]
         else:
-            means[a] = means[a] - centered @ c_b
-            means[b] = means[b] - centered.mT @ c_a
-    return Statistics(means, pairs)
+            out[f"couplings.{k}.{name}"] = centered
+            out[f"layers.{a}.bias"] = out[f"layers.{a}.bias"] - centered @ offsets[b]
+            out[f"layers.{b}.bias"] = out[f"layers.{b}.bias"] - centered.mT @ offsets[a]
+    return out
 
 
 def _dot(parameter: Tensor, coefficient: Tensor) -> Tensor:
@@ -368,20 +405,21 @@ class Monitors:
 
     @property
     def mean_gaps(self) -> list[float]:
-        """Root mean square of data minus model means, per layer."""
-        return [_rms(d) for d in self.difference.means]
+        """Root mean square of data minus model statistics of each layer's parameters, per layer
+        (binary layers: of the means)."""
+        return [_rms(self.difference.of_module(f"layers.{i}")) for i in range(len(self.model.layers))]
 
     @property
     def pair_gaps(self) -> list[float]:
-        """Root mean square of data minus model pair averages, per coupling."""
-        return [_rms(d) for d in self.difference.pairs]
+        """Root mean square of data minus model statistics of each coupling's parameters, per
+        coupling (dense couplings: of the pair averages)."""
+        return [_rms(self.difference.of_module(f"couplings.{k}")) for k in range(len(self.model.couplings))]
 
     @property
     def statistics_gap(self) -> float:
-        """Root mean square of the pair differences of every coupling together: it shrinks as the
-        model's statistics approach the data's (the learning rule's fixed point)."""
-        squares = sum(float(d.square().sum()) for d in self.difference.pairs)
-        return math.sqrt(squares / max(1, sum(d.numel() for d in self.difference.pairs)))
+        """Root mean square of the coupling differences together: it shrinks as the model's
+        statistics approach the data's (the learning rule's fixed point)."""
+        return _rms({name: d for name, d in self.difference.items() if name.startswith("couplings.")})
 
     @property
     def data_free_energy(self) -> float | None:
@@ -395,8 +433,10 @@ class Monitors:
         return None if self.particles is None else _mean_free_energy(self.model, self.particles)
 
 
-def _rms(x: Tensor) -> float:
-    return float(x.square().mean().sqrt())
+def _rms(entries: dict[str, Tensor]) -> float:
+    """Root mean square over every entry of the tensors (0 when there are none)."""
+    squares = sum(float(x.square().sum()) for x in entries.values())
+    return math.sqrt(squares / max(1, sum(x.numel() for x in entries.values())))
 
 
 @torch.no_grad()

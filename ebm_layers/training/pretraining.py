@@ -8,11 +8,10 @@ import torch
 from torch import Tensor, nn
 from torch.nn.utils import parametrize
 
-from .._checks import check_count, check_data, check_model
+from .._checks import check_count, check_model
 from .._random import resolve_generator
 from ..model import functional as F
 from ..model.energy_model import EnergyModel, rbm
-from ..model.graph import is_chain
 from ..phases.mean_field import MeanField
 
 if TYPE_CHECKING:
@@ -77,12 +76,12 @@ def pretrain(
     from .fit import default_optimizer, fit  # fit pretrains by default: imported here (cycle)
 
     check_model(model)
-    if not is_chain(len(model.layers), model.edges):
+    if not model.is_binary_chain():
         raise ValueError(
-            f"pretrain needs a chain of dense couplings (k, k + 1) as built by dbm(), "
-            f"got edges {list(model.edges)}"
+            f"pretrain needs a chain of binary layers and dense couplings (k, k + 1) as built by dbm(), "
+            f"got {model.extra_repr()}"
         )
-    data = check_data("data", data, model.sizes[0], dtype=model.dtype)
+    data = model.checked("data", data, convert=True)
     epochs = check_count("epochs", epochs)
     generator = resolve_generator(generator)
     last = len(model.couplings) - 1
