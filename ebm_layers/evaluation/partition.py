@@ -210,18 +210,27 @@ class _AnnealingPath:
         self.base = base
         self.wide_model = {name: p.detach().to(torch.float64) for name, p in model.named_parameters()}
         self.wide_base = {name: value.to(torch.float64) for name, value in base.items()}
+        self._interpolated: dict[tuple[float, bool], dict[str, Tensor]] = {}
         with substituted(model, {**self.wide_model, **self.wide_base}):
             self.log_z_base = float(
                 sum(layer.log_partition(_zeros(1, layer, torch.float64)).sum() for layer in model.layers)
             )
 
     def layer_parameters(self, beta: float, wide: bool = False) -> dict[str, Tensor]:
-        """The layers' parameters at ``beta`` (in float64 when ``wide``)."""
-        target = {name: self.wide_model[name] for name in self.base} if wide else self.target
-        base = self.wide_base if wide else self.base
-        if beta == 1.0:
-            return target
-        return {name: (1.0 - beta) * base[name] + beta * value for name, value in target.items()}
+        """The layers' parameters at ``beta`` (in float64 when ``wide``); the last few are kept, as
+        each beta is asked for by two successive steps."""
+        key = (beta, wide)
+        if key not in self._interpolated:
+            if len(self._interpolated) >= 6:  # the oldest goes (dicts keep insertion order)
+                del self._interpolated[next(iter(self._interpolated))]
+            target = {name: self.wide_model[name] for name in self.base} if wide else self.target
+            base = self.wide_base if wide else self.base
+            self._interpolated[key] = (
+                target
+                if beta == 1.0
+                else {name: (1.0 - beta) * base[name] + beta * value for name, value in target.items()}
+            )
+        return self._interpolated[key]
 
     def draw_base(self, num_chains: int, generator: torch.Generator) -> list[Tensor | None]:
         """Kept layers drawn from the base model (each layer alone); summed layers are ``None``."""
@@ -248,7 +257,7 @@ class _AnnealingPath:
     def _log_partitions(self, beta: float, terms: _Terms) -> Tensor | float:
         """``sum_s log_partition_s(beta * u_s; theta_beta)`` ``(B,)`` in float64."""
         model, total = self.model, 0.0
-        with substituted(model, {**self.wide_model, **self.layer_parameters(beta, wide=True)}):
+        with substituted(model, self.layer_parameters(beta, wide=True)):  # only the layers' terms
             for s, u in terms.inputs.items():
                 total = total + model.layers[s].log_partition(beta * u.to(torch.float64))
         return total

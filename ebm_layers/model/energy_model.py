@@ -60,6 +60,7 @@ class EnergyModel(nn.Module):
         self.couplings = nn.ModuleList(couplings)
         self.edges: tuple[tuple[int, int], ...] = tuple((c.a, c.b) for c in couplings)
         # The couplings touching each layer, with their ends.
+        self._parts = (*layers, *couplings)  # a plain tuple (not registered twice): dtype's quick look
         self._touching: list[list[tuple[Coupling, tuple[int, int]]]] = [
             [(c, e) for c, e in zip(couplings, self.edges) if i in e] for i in range(len(layers))
         ]
@@ -87,7 +88,7 @@ class EnergyModel(nn.Module):
     @property
     def dtype(self) -> torch.dtype:
         """The dtype of every parameter (float32 unless converted, e.g. by ``.double()``)."""
-        for module in (*self.layers, *self.couplings):  # a direct look first: asked on every call
+        for module in self._parts:  # a direct look first: asked on every call
             for parameter in module._parameters.values():
                 if parameter is not None:
                     return parameter.dtype

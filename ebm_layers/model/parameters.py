@@ -26,8 +26,12 @@ class substituted:  # lower case: used like a function, ``with substituted(modul
     def __enter__(self) -> None:
         try:
             for name, value in self.values.items():
-                owner_name, _, leaf = name.rpartition(".")
-                owner = self.module.get_submodule(owner_name) if owner_name else self.module
+                *path, leaf = name.split(".")
+                owner = self.module
+                for part in path:  # the submodules' own dicts: get_submodule's checks cost more here
+                    owner = owner._modules.get(part)
+                    if owner is None:
+                        raise KeyError(f"{name!r} is not a parameter of {type(self.module).__name__}")
                 if leaf not in owner._parameters:
                     raise KeyError(f"{name!r} is not a parameter of {type(self.module).__name__}")
                 self.swapped.append((owner, leaf, owner._parameters[leaf]))

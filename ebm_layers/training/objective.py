@@ -201,7 +201,8 @@ class TwoPhaseObjective(nn.Module):
         """The surrogate loss of batch ``v`` ``(B, n_0)``; keyword arguments go to both phases
         (``index=`` for :class:`DataParticles`)."""
         model = self.model
-        self.check_parameters()
+        parameters = dict(model.named_parameters())
+        self.check_parameters(parameters)
         if isinstance(v, Tensor) and not (v.is_floating_point() or v.is_complex()):
             v = v.to(model.dtype)  # binary data kept as bool or uint8
         data = self.positive.statistics(v, **kwargs)
@@ -209,7 +210,6 @@ class TwoPhaseObjective(nn.Module):
         difference = data - fantasy
         coefficients, running = self._coefficients(difference, data, fantasy)
         # Linear in the parameters: d loss / d theta = -coefficient, an elementwise backward.
-        parameters = dict(model.named_parameters())
         loss = -sum(_dot(parameters[name], c) for name, c in coefficients.items())
         # Any non-finite statistic makes the loss non-finite (NaN and Inf propagate through it).
         finite = bool(torch.isfinite(loss))
@@ -240,12 +240,14 @@ class TwoPhaseObjective(nn.Module):
         )
         return loss
 
-    def check_parameters(self) -> None:
+    def check_parameters(self, parameters: dict[str, Tensor] | None = None) -> None:
         """The divergence guard on the parameters: all finite, weights within ``max_weight``.
 
         Raises ``FloatingPointError`` naming the parameter; ``fit`` also calls it after every epoch.
+        ``parameters`` passes ``dict(model.named_parameters())`` when the caller has it.
         """
-        for name, parameter in self.model.named_parameters():
+        parameters = dict(self.model.named_parameters()) if parameters is None else parameters
+        for name, parameter in parameters.items():
             low, high = parameter.detach().aminmax()  # one pass; NaN propagates through both
             largest = max(-float(low), float(high))
             if not math.isfinite(largest):
