@@ -21,6 +21,7 @@ __all__ = [
     "check_example_index",
     "check_index",
     "check_model",
+    "check_range",
     "check_real",
     "check_size",
     "check_states",
@@ -57,12 +58,22 @@ def check_real(name: str, value: object) -> float:
     return float(value)
 
 
+def check_range(name: str, value: object, low: float, high: float = math.inf, *, closed: str = "[)") -> float:
+    """Return ``value`` as a float after checking it is a real number in the interval from ``low``
+    to ``high``; ``closed`` gives its ends as brackets: ``"[)"`` (default), ``"[]"``, ``"()"``, ``"(]"``.
+    An infinite ``high`` is never included: the value must be finite."""
+    value = check_real(name, value)
+    above = value >= low if closed[0] == "[" else value > low
+    below = value <= high if closed[1] == "]" and high < math.inf else value < high
+    if not (above and below):
+        high_text = "inf" if high == math.inf else f"{high:g}"
+        raise ValueError(f"{name} must lie in {closed[0]}{low:g}, {high_text}{closed[1]}, got {value}")
+    return value
+
+
 def check_positive_real(name: str, value: object) -> float:
     """Return ``value`` as a float after checking it is a positive, finite real number."""
-    value = check_real(name, value)
-    if not 0.0 < value < math.inf:
-        raise ValueError(f"{name} must be positive and finite, got {value}")
-    return value
+    return check_range(name, value, 0.0, closed="()")
 
 
 def check_index(name: str, value: object, count: int | None = None) -> int:

@@ -198,7 +198,7 @@ def test_a_refused_step_moves_nothing_and_the_fast_weights_only_decay(monkeypatc
     ("options", "fragment"),
     [
         ({"fast_decay": 1.0}, "fast_decay must lie in"),
-        ({"fast_scale": -1.0}, "fast_scale must be"),
+        ({"fast_scale": -1.0}, "fast_scale must lie in"),
     ],
 )
 def test_bad_fast_weight_arguments(options, fragment):

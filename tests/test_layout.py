@@ -11,6 +11,7 @@ PACKAGE = Path(el.__file__).resolve().parent
 STAGES = {
     "_checks": 0,
     "_random": 0,
+    "_buffers": 0,
     "datasets": 0,
     "viz": 0,
     "model": 0,

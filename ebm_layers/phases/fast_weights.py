@@ -6,7 +6,8 @@ from __future__ import annotations
 import torch
 from torch import Tensor
 
-from .._checks import check_real
+from .._buffers import buffer_family, register_buffer_family
+from .._checks import check_range
 from ..model.energy_model import EnergyModel
 from ..model.statistics import Statistics
 from .gibbs import PersistentSampler
@@ -57,25 +58,20 @@ class FastWeightsSampler(PersistentSampler):
         fast_decay: float = 0.95,
     ) -> None:
         super().__init__(model, num_particles, sweeps, generator, init, probabilities)
-        fast_scale = check_real("fast_scale", fast_scale)
-        if not 0.0 <= fast_scale < float("inf"):
-            raise ValueError(f"fast_scale must be >= 0 and finite, got {fast_scale}")
-        fast_decay = check_real("fast_decay", fast_decay)
-        if not 0.0 <= fast_decay < 1.0:
-            raise ValueError(f"fast_decay must lie in [0, 1), got {fast_decay}")
+        fast_scale = check_range("fast_scale", fast_scale, 0.0)
+        fast_decay = check_range("fast_decay", fast_decay, 0.0, 1.0)
         self.fast_scale, self.fast_decay = fast_scale, fast_decay
-        for j, (_, parameter) in enumerate(model.named_parameters()):
-            self.register_buffer(f"fast_{j}", torch.zeros_like(parameter.detach()))
-            self.register_buffer(f"last_{j}", torch.zeros_like(parameter.detach()))
+        zeros = [torch.zeros_like(parameter.detach()) for parameter in model.parameters()]
+        register_buffer_family(self, "fast", zeros)
+        register_buffer_family(self, "last", [z.clone() for z in zeros])
         self.register_buffer("following", torch.tensor(False))
         self._register_load_state_dict_pre_hook(_rename_old_buffers, with_module=True)
 
     def _named(self) -> list[tuple[str, Tensor, Tensor, Tensor]]:
         """``(name, parameter, fast, last)`` of every model parameter."""
-        return [
-            (name, parameter, getattr(self, f"fast_{j}"), getattr(self, f"last_{j}"))
-            for j, (name, parameter) in enumerate(self.model.named_parameters())
-        ]
+        named = list(self.model.named_parameters())
+        fast, last = buffer_family(self, "fast", len(named)), buffer_family(self, "last", len(named))
+        return [(name, parameter, f, s) for (name, parameter), f, s in zip(named, fast, last)]
 
     def _sweep_parameters(self) -> dict[str, Tensor]:
         return {name: parameter.detach() + fast for name, parameter, fast, _ in self._named()}

@@ -10,6 +10,7 @@ import torch
 from torch import Tensor, nn
 from tqdm.auto import tqdm
 
+from .._buffers import buffer_family, register_buffer_family, set_buffer_family
 from .._checks import check_count, check_example_index, check_model, check_size
 from .._random import resolve_generator, track_generator_state
 from ..model import functional as F
@@ -155,18 +156,17 @@ class PersistentSampler(nn.Module):
         self.init = init
         self.probabilities = probabilities
         track_generator_state(self)
-        for i, n in enumerate(model.sizes):
-            self.register_buffer(f"particles_{i}", torch.empty(self.num_particles, n, dtype=model.dtype))
+        empty = [torch.empty(self.num_particles, n, dtype=model.dtype) for n in model.sizes]
+        register_buffer_family(self, "particles", empty)
         self.reset()
 
     @property
     def particles(self) -> list[Tensor]:
         """The current states, one ``(P, n_i)`` tensor per layer (not advanced)."""
-        return [getattr(self, f"particles_{i}") for i in range(len(self.model.layers))]
+        return buffer_family(self, "particles", len(self.model.layers))
 
     def _set_particles(self, states: Sequence[Tensor]) -> None:
-        for i, x in enumerate(states):
-            setattr(self, f"particles_{i}", x)
+        set_buffer_family(self, "particles", states)
 
     @torch.no_grad()
     def reset(self) -> None:
@@ -300,11 +300,10 @@ class DataParticles(nn.Module):
         self.model = model
         self.generator = resolve_generator(generator)
         track_generator_state(self)
-        for i, layer in enumerate(model.layers[1:], start=1):
-            states = layer.initial_states(self.num_examples, self.generator)
-            # Units with values 0 and 1 only are kept as uint8 (a quarter of float32's memory).
-            binary = layer.support == (0.0, 1.0) and hasattr(layer, "num_states")
-            self.register_buffer(f"states_{i}", states.to(torch.uint8) if binary else states)
+        hidden = [layer.initial_states(self.num_examples, self.generator) for layer in model.layers[1:]]
+        register_buffer_family(
+            self, "states", [_stored(layer, x) for layer, x in zip(model.layers[1:], hidden)], start=1
+        )
 
     @torch.no_grad()
     def statistics(self, v: Tensor, index: Tensor | None = None) -> Statistics:
@@ -314,7 +313,7 @@ class DataParticles(nn.Module):
         model = self.model
         v = model.checked("v", v)
         index = check_example_index("index", index, self.num_examples, v.shape[0])
-        stored = [getattr(self, f"states_{i}") for i in range(1, len(model.sizes))]
+        stored = buffer_family(self, "states", len(model.sizes) - 1, start=1)
         states = [v, *(x[index].to(model.dtype) for x in stored)]
         for _ in range(self.sweeps):
             gibbs_sweep(model, states, self.generator, clamped={0})
@@ -327,3 +326,9 @@ class DataParticles(nn.Module):
 
     def extra_repr(self) -> str:
         return f"num_examples={self.num_examples}, sweeps={self.sweeps}"
+
+
+def _stored(layer, states: Tensor) -> Tensor:
+    """States as kept in a buffer: ``uint8`` for discrete units in {0, 1}, else as they are."""
+    binary = layer.support == (0.0, 1.0) and hasattr(layer, "num_states")
+    return states.to(torch.uint8) if binary else states

@@ -10,7 +10,7 @@ from dataclasses import dataclass, field, replace
 import torch
 from torch import Tensor, nn
 
-from .._checks import check_index, check_model, check_positive_real, check_real, check_size
+from .._checks import check_index, check_model, check_positive_real, check_range, check_real, check_size
 from ..model.energy_model import EnergyModel
 from ..model.graph import UpdateSchedule
 from ..model.parameters import substituted
@@ -111,9 +111,7 @@ class MeanField(nn.Module):
             raise ValueError(f"update must be one of {UPDATES}, got {update!r}")
         if backward not in BACKWARDS:
             raise ValueError(f"backward must be one of {BACKWARDS}, got {backward!r}")
-        check_real("damping", damping)
-        if not 0.0 <= damping < 1.0:
-            raise ValueError(f"damping must lie in [0, 1), got {damping}")
+        check_range("damping", damping, 0.0, 1.0)
         check_positive_real("tol", tol)
         self.max_iter = check_size("max_iter", max_iter)
         if isinstance(init, str):

@@ -7,6 +7,7 @@ import torch
 from torch import Tensor
 from torch.nn.utils import parametrize
 
+from .._buffers import buffer_family, register_buffer_family, set_buffer_family
 from .._checks import check_size
 from ..model import functional as F
 from ..model.energy_model import EnergyModel
@@ -83,8 +84,7 @@ class ReplicaExchangeSampler(PersistentSampler):
         self.register_buffer("swap_accepts", torch.zeros(num_replicas - 1, dtype=torch.float64))
         self.register_buffer("sweeps_done", torch.zeros((), dtype=torch.int64))
         hot = (num_replicas - 1) * self.num_particles
-        for i, n in enumerate(model.sizes):
-            self.register_buffer(f"hot_{i}", torch.empty(hot, n, dtype=model.dtype))
+        register_buffer_family(self, "hot", [torch.empty(hot, n, dtype=model.dtype) for n in model.sizes])
         self._draw_hot()
 
     @torch.no_grad()
@@ -95,9 +95,10 @@ class ReplicaExchangeSampler(PersistentSampler):
             self._draw_hot()
 
     def _draw_hot(self) -> None:
-        for i, layer in enumerate(self.model.layers):
-            count = getattr(self, f"hot_{i}").shape[0]
-            setattr(self, f"hot_{i}", layer.initial_states(count, self.generator))
+        count = (self.num_replicas - 1) * self.num_particles
+        set_buffer_family(
+            self, "hot", [layer.initial_states(count, self.generator) for layer in self.model.layers]
+        )
 
     @property
     def num_replicas(self) -> int:
@@ -112,7 +113,8 @@ class ReplicaExchangeSampler(PersistentSampler):
     def _advance(self, sweeps: int, keep_probabilities: bool = False) -> dict[int, Tensor]:
         model, count = self.model, self.num_particles
         layers = range(len(model.sizes))
-        states = [torch.cat([getattr(self, f"hot_{i}"), self.particles[i]]).to(model.dtype) for i in layers]
+        hot = buffer_family(self, "hot", len(model.sizes))
+        states = [torch.cat([hot[i], self.particles[i]]).to(model.dtype) for i in layers]
         # E_beta = beta * E + (1 - beta) * E_base: the couplings' inputs scaled by beta, the layers'
         # parameters interpolated towards the base model's; one sweep per replica.
         base = self._base_parameters()
@@ -129,8 +131,7 @@ class ReplicaExchangeSampler(PersistentSampler):
                     x[k * count : (k + 1) * count] = new
             self._swap(states)
         hot = (self.num_replicas - 1) * count
-        for i in layers:
-            setattr(self, f"hot_{i}", states[i][:hot])
+        set_buffer_family(self, "hot", [x[:hot] for x in states])
         self._set_particles([x[hot:] for x in states])
         if not keep_probabilities:
             return {}

@@ -228,69 +228,14 @@ def fit(
     if not isinstance(distributed, bool):
         raise TypeError(f"distributed must be True or False, got {distributed!r}")
     rank, world = current_world() if distributed else (0, 1)
-    if negative not in NEGATIVE_PHASES:
-        raise ValueError(f"negative must be one of {NEGATIVE_PHASES}, got {negative!r}")
-    if negative == "contrastive-divergence" and mixing_aid != "auto":
-        raise ValueError(f"mixing_aid={mixing_aid!r} is for persistent chains, not negative={negative!r}")
-    if objective is None:
-        particle_generator = rank_generator(generator.initial_seed(), rank) if distributed else generator
-        if negative == "contrastive-divergence":
-            sampler = ContrastiveDivergence(model, steps=1, generator=particle_generator)
-        else:
-            sampler = _default_sampler(
-                model, mixing_aid, particle_generator, data if loader is None else None
-            )
-        objective = TwoPhaseObjective(model, MeanField(model, init="bottom-up"), sampler)
-    elif not isinstance(objective, TwoPhaseObjective):
-        raise TypeError(f"objective must be a TwoPhaseObjective, got {type(objective).__name__}")
-    elif mixing_aid != "auto" or negative != "persistent":
-        raise ValueError(
-            "mixing_aid and negative choose the default objective's sampler; with your own objective, "
-            "build it in"
-        )
-    elif objective.model is not model:
-        raise ValueError("objective belongs to another model than the one given")
+    objective = _objective_of(
+        model, objective, negative, mixing_aid, generator, distributed, rank, data, loader
+    )
     default_schedule = optimizer is None and scheduler is None
-    if optimizer is None:
-        optimizer, default_scheduler = default_optimizer(model, epochs)
-        scheduler = default_scheduler if scheduler is None else scheduler
-    elif not isinstance(optimizer, torch.optim.Optimizer):
-        raise TypeError(f"optimizer must be a torch.optim.Optimizer, got {type(optimizer).__name__}")
-    decays = [group.get("weight_decay", 0.0) for group in optimizer.param_groups]
-    if objective.centering and any(decays):
-        raise ValueError(
-            f"weight_decay={max(decays)} with a centering objective: the optimizer decays the ordinary "
-            "parameters, not the centered ones the learning rule steps in; train centered models "
-            "without weight decay"
-        )
-    if objective.centering and not isinstance(optimizer, torch.optim.SGD):
-        warnings.warn(
-            f"centering maps gradients, which is exact for SGD; {type(optimizer).__name__} rescales "
-            "bias and weight gradients separately and can make training collapse (see the "
-            "TwoPhaseObjective docstring): prefer torch.optim.SGD with centering",
-            stacklevel=2,
-        )
+    optimizer, scheduler = _optimizer_of(model, objective, optimizer, scheduler, epochs)
     with_index = isinstance(objective.positive, DataParticles)
-    if distributed and with_index:
-        raise ValueError("distributed=True needs MeanField for the data phase, not DataParticles")
-    if distributed and loader is not None and not isinstance(loader.sampler, DistributedSampler):
-        raise ValueError(
-            "with distributed=True a DataLoader needs a DistributedSampler, "
-            f"got {type(loader.sampler).__name__}"
-        )
-    if with_index and loader is None and objective.positive.num_examples != data.shape[0]:
-        raise ValueError(
-            f"the DataParticles hold {objective.positive.num_examples} examples but data has {data.shape[0]}"
-        )
-    shuffling = loader.generator if loader is not None else _child_generator(generator)
-    if loader is not None and shuffling is None and (checkpoint is not None or resume is not None):
-        if isinstance(loader.sampler, RandomSampler) and loader.sampler.generator is None:
-            warnings.warn(
-                "the DataLoader shuffles without a generator of its own, so a resumed run will not see "
-                "the batches of an uninterrupted one; pass DataLoader(..., generator=torch.Generator())",
-                stacklevel=2,
-            )
-
+    _check_sharding(objective, data, loader, distributed, with_index)
+    shuffling = _shuffling(loader, generator, checkpoint is not None or resume is not None)
     pretrain_epochs = _pretrain_epochs(pretrain_epochs, model, loader, resume)
 
     result = FitResult(objective, optimizer, scheduler)
@@ -299,7 +244,7 @@ def fit(
         ranks = (rank, world) if distributed else None
         start, planned, last_rates = _resume(resume, result, shuffling, ranks)
         if default_schedule and planned not in (None, epochs) and start < epochs:
-            scheduler = result.scheduler = _continued_decay(optimizer, last_rates, start, epochs)
+            result.scheduler = _continued_decay(optimizer, last_rates, start, epochs)
     elif pretrain_epochs:
         logger.info(
             "fit: pretraining the untrained chain %s greedily (%d RBMs x %d epochs) before %d joint epochs",
@@ -317,85 +262,217 @@ def fit(
     shares = None  # with distributed tensor data: this rank's share of every epoch
     if distributed and loader is None:
         shares = DistributedSampler(data, world, rank, seed=generator.initial_seed(), drop_last=True)
-    if loader is not None:
-        batches_per_epoch = _length(loader)
-    else:
-        batches_per_epoch = math.ceil((data.shape[0] if shares is None else len(shares)) / batch_size)
-    total = None if batches_per_epoch is None else batches_per_epoch * (epochs - start)
-    step = start * (batches_per_epoch or 0)
-    runner = wrap_distributed(objective) if distributed else objective
-    warned_zero_rate = False
+    run = _Run(
+        model, objective, data, loader, batch_size, validation, callbacks, shuffling, shares, with_index,
+        rank, distributed, checkpoint, stage, epochs,
+    )  # fmt: skip
     try:
-        with tqdm(total=total, unit="batch", disable=not progress or rank != 0, dynamic_ncols=True) as bar:
-            for epoch in range(start, epochs):
-                bar.set_description(f"{stage}: epoch {epoch + 1}/{epochs}")
-                if not warned_zero_rate and all(group["lr"] == 0 for group in optimizer.param_groups):
-                    warned_zero_rate = True
-                    warnings.warn(
-                        f"the learning rate is 0 at epoch {epoch + 1} of {epochs}: the scheduler ended "
-                        "before the last epoch, so the remaining epochs leave the parameters as they are "
-                        "(resuming with more epochs? give fit a scheduler that spans them)",
-                        stacklevel=2,
-                    )
-                began = time.perf_counter()
-                gaps, iterations, seen, seen_rows = [], [], [], 0
-                for sampler in (shares, getattr(loader, "sampler", None)):
-                    if isinstance(sampler, DistributedSampler):
-                        sampler.set_epoch(epoch)
-                for v, index in _batches(data, loader, batch_size, shuffling, with_index, shares):
-                    loss = runner(v, index=index) if with_index else runner(v)
-                    optimizer.zero_grad(set_to_none=True)
-                    loss.backward()
-                    optimizer.step()
-                    step += 1
-                    monitors = objective.last
-                    gaps.append(monitors.statistics_gap)
-                    iterations.append(monitors.mean_field_iterations)
-                    if validation is not None and seen_rows < len(validation):
-                        seen.append(v.detach())
-                        seen_rows += len(v)
-                    bar.update()
-                    bar.set_postfix(gap=f"{gaps[-1]:.4f}", refresh=False)
-                    if callbacks and _run(
-                        callbacks,
-                        FitState("batch", epoch, step, objective, optimizer, scheduler, result.history),
-                    ):
-                        return result  # stopped mid-epoch: no record, scheduler step or checkpoint for it
-                objective.check_parameters()
-                record = {
-                    "stage": stage,
-                    "epoch": epoch + 1,
-                    "learning_rate": optimizer.param_groups[0]["lr"],
-                    "statistics_gap": sum(gaps) / max(1, len(gaps)),
-                    "free_energy_gap": _free_energy_gap(model, validation, seen),
-                    "mean_field_iterations": None
-                    if None in iterations
-                    else sum(iterations) / max(1, len(iterations)),
-                    "seconds": time.perf_counter() - began,
-                }
-                result.history.append(record)
-                rates = [group["lr"] for group in optimizer.param_groups]
-                if scheduler is not None:
-                    scheduler.step()
-                if checkpoint is not None:
-                    state = _checkpoint_state(result, epoch + 1, shuffling, epochs, rates)
-                    if distributed:  # every rank's particles and generators, written by rank 0
-                        state["ranks"] = rank_states(objective)
-                    if rank == 0:
-                        save_checkpoint(state, checkpoint)
-                    if distributed:
-                        dist.barrier()
-                if record["free_energy_gap"] is not None:
-                    bar.set_postfix(
-                        gap=f"{record['statistics_gap']:.4f}", held_out_dF=f"{record['free_energy_gap']:.3f}"
-                    )
-                if _run(
-                    callbacks, FitState("epoch", epoch, step, objective, optimizer, scheduler, result.history)
-                ):
-                    break
+        _train(run, result, start, progress)
     finally:
         objective.process_group = None
     return result
+
+
+@dataclass
+class _Run:
+    """What the epoch loop of one :func:`fit` call works with, once checked and wired."""
+
+    model: EnergyModel
+    objective: TwoPhaseObjective
+    data: Tensor | None
+    loader: DataLoader | None
+    batch_size: int | None
+    validation: Tensor | None
+    callbacks: list
+    shuffling: torch.Generator | None
+    shares: DistributedSampler | None
+    with_index: bool
+    rank: int
+    distributed: bool
+    checkpoint: str | os.PathLike | None
+    stage: str
+    epochs: int
+
+
+def _objective_of(
+    model: EnergyModel,
+    objective,
+    negative: str,
+    mixing_aid,
+    generator,
+    distributed: bool,
+    rank: int,
+    data,
+    loader,
+) -> TwoPhaseObjective:
+    """The given objective, checked, or the default one (bottom-up mean field, the chosen negative phase)."""
+    if negative not in NEGATIVE_PHASES:
+        raise ValueError(f"negative must be one of {NEGATIVE_PHASES}, got {negative!r}")
+    if negative == "contrastive-divergence" and mixing_aid != "auto":
+        raise ValueError(f"mixing_aid={mixing_aid!r} is for persistent chains, not negative={negative!r}")
+    if objective is None:
+        particle_generator = rank_generator(generator.initial_seed(), rank) if distributed else generator
+        if negative == "contrastive-divergence":
+            sampler = ContrastiveDivergence(model, steps=1, generator=particle_generator)
+        else:
+            sampler = _default_sampler(
+                model, mixing_aid, particle_generator, data if loader is None else None
+            )
+        return TwoPhaseObjective(model, MeanField(model, init="bottom-up"), sampler)
+    if not isinstance(objective, TwoPhaseObjective):
+        raise TypeError(f"objective must be a TwoPhaseObjective, got {type(objective).__name__}")
+    if mixing_aid != "auto" or negative != "persistent":
+        raise ValueError(
+            "mixing_aid and negative choose the default objective's sampler; with your own objective, "
+            "build it in"
+        )
+    if objective.model is not model:
+        raise ValueError("objective belongs to another model than the one given")
+    return objective
+
+
+def _optimizer_of(model: EnergyModel, objective: TwoPhaseObjective, optimizer, scheduler, epochs: int):
+    """The given optimizer and scheduler, checked against the objective, or the defaults."""
+    if optimizer is None:
+        optimizer, default_scheduler = default_optimizer(model, epochs)
+        scheduler = default_scheduler if scheduler is None else scheduler
+    elif not isinstance(optimizer, torch.optim.Optimizer):
+        raise TypeError(f"optimizer must be a torch.optim.Optimizer, got {type(optimizer).__name__}")
+    decays = [group.get("weight_decay", 0.0) for group in optimizer.param_groups]
+    if objective.centering and any(decays):
+        raise ValueError(
+            f"weight_decay={max(decays)} with a centering objective: the optimizer decays the ordinary "
+            "parameters, not the centered ones the learning rule steps in; train centered models "
+            "without weight decay"
+        )
+    if objective.centering and not isinstance(optimizer, torch.optim.SGD):
+        warnings.warn(
+            f"centering maps gradients, which is exact for SGD; {type(optimizer).__name__} rescales "
+            "bias and weight gradients separately and can make training collapse (see the "
+            "TwoPhaseObjective docstring): prefer torch.optim.SGD with centering",
+            stacklevel=3,
+        )
+    return optimizer, scheduler
+
+
+def _shuffling(
+    loader: DataLoader | None, generator: torch.Generator, resumable: bool
+) -> torch.Generator | None:
+    """The generator that shuffles the batches (the loader's own, or one drawn from ``generator``);
+    warns when a resumable run's loader shuffles without one."""
+    if loader is None:
+        return _child_generator(generator)
+    if resumable and loader.generator is None:
+        if isinstance(loader.sampler, RandomSampler) and loader.sampler.generator is None:
+            warnings.warn(
+                "the DataLoader shuffles without a generator of its own, so a resumed run will not see "
+                "the batches of an uninterrupted one; pass DataLoader(..., generator=torch.Generator())",
+                stacklevel=3,
+            )
+    return loader.generator
+
+
+def _check_sharding(objective: TwoPhaseObjective, data, loader, distributed: bool, with_index: bool) -> None:
+    """Data particles and distributed runs: what each needs of the data."""
+    if distributed and with_index:
+        raise ValueError("distributed=True needs MeanField for the data phase, not DataParticles")
+    if distributed and loader is not None and not isinstance(loader.sampler, DistributedSampler):
+        raise ValueError(
+            "with distributed=True a DataLoader needs a DistributedSampler, "
+            f"got {type(loader.sampler).__name__}"
+        )
+    if with_index and loader is None and objective.positive.num_examples != data.shape[0]:
+        raise ValueError(
+            f"the DataParticles hold {objective.positive.num_examples} examples but data has {data.shape[0]}"
+        )
+
+
+def _train(run: _Run, result: FitResult, start: int, progress: bool) -> None:
+    """The epoch loop from epoch ``start``, with a tqdm bar; returns early when a callback stops."""
+    if run.loader is not None:
+        batches_per_epoch = _length(run.loader)
+    else:
+        rows = run.data.shape[0] if run.shares is None else len(run.shares)
+        batches_per_epoch = math.ceil(rows / run.batch_size)
+    total = None if batches_per_epoch is None else batches_per_epoch * (run.epochs - start)
+    step = start * (batches_per_epoch or 0)
+    runner = wrap_distributed(run.objective) if run.distributed else run.objective
+    warned_zero_rate = False
+    with tqdm(total=total, unit="batch", disable=not progress or run.rank != 0, dynamic_ncols=True) as bar:
+        for epoch in range(start, run.epochs):
+            bar.set_description(f"{run.stage}: epoch {epoch + 1}/{run.epochs}")
+            if not warned_zero_rate and all(group["lr"] == 0 for group in result.optimizer.param_groups):
+                warned_zero_rate = True
+                warnings.warn(
+                    f"the learning rate is 0 at epoch {epoch + 1} of {run.epochs}: the scheduler ended "
+                    "before the last epoch, so the remaining epochs leave the parameters as they are "
+                    "(resuming with more epochs? give fit a scheduler that spans them)",
+                    stacklevel=3,
+                )
+            step, record = _train_epoch(run, result, runner, epoch, step, bar)
+            if record is None:
+                return  # stopped mid-epoch: no record, scheduler step or checkpoint for it
+            if _end_epoch(run, result, epoch, step, record, bar):
+                return
+
+
+def _train_epoch(run: _Run, result: FitResult, runner, epoch: int, step: int, bar) -> tuple[int, dict | None]:
+    """One pass over the data; returns the step count and the epoch's record (``None`` when a
+    callback stopped the run)."""
+    objective, optimizer = run.objective, result.optimizer
+    began = time.perf_counter()
+    gaps, iterations, seen, seen_rows = [], [], [], 0
+    for sampler in (run.shares, getattr(run.loader, "sampler", None)):
+        if isinstance(sampler, DistributedSampler):
+            sampler.set_epoch(epoch)
+    for v, index in _batches(run.data, run.loader, run.batch_size, run.shuffling, run.with_index, run.shares):
+        loss = runner(v, index=index) if run.with_index else runner(v)
+        optimizer.zero_grad(set_to_none=True)
+        loss.backward()
+        optimizer.step()
+        step += 1
+        monitors = objective.last
+        gaps.append(monitors.statistics_gap)
+        iterations.append(monitors.mean_field_iterations)
+        if run.validation is not None and seen_rows < len(run.validation):
+            seen.append(v.detach())
+            seen_rows += len(v)
+        bar.update()
+        bar.set_postfix(gap=f"{gaps[-1]:.4f}", refresh=False)
+        state = FitState("batch", epoch, step, objective, optimizer, result.scheduler, result.history)
+        if run.callbacks and _run(run.callbacks, state):
+            return step, None
+    objective.check_parameters()
+    return step, {
+        "stage": run.stage,
+        "epoch": epoch + 1,
+        "learning_rate": optimizer.param_groups[0]["lr"],
+        "statistics_gap": sum(gaps) / max(1, len(gaps)),
+        "free_energy_gap": _free_energy_gap(run.model, run.validation, seen),
+        "mean_field_iterations": None if None in iterations else sum(iterations) / max(1, len(iterations)),
+        "seconds": time.perf_counter() - began,
+    }
+
+
+def _end_epoch(run: _Run, result: FitResult, epoch: int, step: int, record: dict, bar) -> bool:
+    """Record the epoch, step the scheduler, write the checkpoint, run the epoch callbacks;
+    returns whether a callback stopped the run."""
+    result.history.append(record)
+    rates = [group["lr"] for group in result.optimizer.param_groups]
+    if result.scheduler is not None:
+        result.scheduler.step()
+    if run.checkpoint is not None:
+        state = _checkpoint_state(result, epoch + 1, run.shuffling, run.epochs, rates)
+        if run.distributed:  # every rank's particles and generators, written by rank 0
+            state["ranks"] = rank_states(run.objective)
+        if run.rank == 0:
+            save_checkpoint(state, run.checkpoint)
+        if run.distributed:
+            dist.barrier()
+    if record["free_energy_gap"] is not None:
+        bar.set_postfix(gap=f"{record['statistics_gap']:.4f}", held_out_dF=f"{record['free_energy_gap']:.3f}")
+    state = FitState("epoch", epoch, step, run.objective, result.optimizer, result.scheduler, result.history)
+    return _run(run.callbacks, state)
 
 
 MIXING_AIDS = ("auto", None, "fast-weights", "replica-exchange")

@@ -10,7 +10,8 @@ from typing import Protocol, runtime_checkable
 import torch
 from torch import Tensor, nn
 
-from .._checks import check_model, check_real
+from .._buffers import buffer_family, register_buffer_family
+from .._checks import check_model, check_range
 from ..model.couplings import DenseCoupling, LateralCoupling
 from ..model.energy_model import EnergyModel
 from ..model.statistics import Statistics
@@ -148,15 +149,9 @@ class TwoPhaseObjective(nn.Module):
         if centering or sparsity_target is not None:
             _check_built_in(model, "centering" if centering else "sparsity_target")
         if sparsity_target is not None:
-            sparsity_target = check_real("sparsity_target", sparsity_target)
-            if not 0.0 < sparsity_target < 1.0:
-                raise ValueError(f"sparsity_target must lie strictly between 0 and 1, got {sparsity_target}")
-        sparsity_cost = check_real("sparsity_cost", sparsity_cost)
-        if not 0.0 <= sparsity_cost < math.inf:
-            raise ValueError(f"sparsity_cost must be >= 0 and finite, got {sparsity_cost}")
-        sparsity_decay = check_real("sparsity_decay", sparsity_decay)
-        if not 0.0 <= sparsity_decay < 1.0:
-            raise ValueError(f"sparsity_decay must lie in [0, 1), got {sparsity_decay}")
+            sparsity_target = check_range("sparsity_target", sparsity_target, 0.0, 1.0, closed="()")
+        sparsity_cost = check_range("sparsity_cost", sparsity_cost, 0.0)
+        sparsity_decay = check_range("sparsity_decay", sparsity_decay, 0.0, 1.0)
         if not isinstance(centering, bool):
             raise TypeError(f"centering must be True or False, got {centering!r}")
         if centering and sparsity_target is not None:
@@ -166,12 +161,8 @@ class TwoPhaseObjective(nn.Module):
             )
         if data is not None and not centering:
             raise ValueError("data= sets the centering offsets; it needs centering=True")
-        offset_decay = check_real("offset_decay", offset_decay)
-        if not 0.0 <= offset_decay <= 1.0:
-            raise ValueError(f"offset_decay must lie in [0, 1], got {offset_decay}")
-        max_weight = check_real("max_weight", max_weight)
-        if not 0.0 < max_weight:
-            raise ValueError(f"max_weight must be positive, got {max_weight}")
+        offset_decay = check_range("offset_decay", offset_decay, 0.0, 1.0, closed="[]")
+        max_weight = check_range("max_weight", max_weight, 0.0, closed="()")
         self.model, self.positive, self.negative = model, positive, negative
         self.sparsity_target, self.sparsity_cost, self.sparsity_decay = (
             sparsity_target,
@@ -181,17 +172,16 @@ class TwoPhaseObjective(nn.Module):
         self.centering, self.offset_decay = centering, offset_decay
         self.max_weight = max_weight
         if centering:
-            for i, n in enumerate(model.sizes):
-                self.register_buffer(f"offset_{i}", torch.full((n,), 0.5, dtype=model.dtype))
+            register_buffer_family(
+                self, "offset", [torch.full((n,), 0.5, dtype=model.dtype) for n in model.sizes]
+            )
         # Whether the offsets are still the default start (fit then starts them from its data).
         self.offsets_unset = centering and data is None
         if data is not None:
             self.init_offsets(data)
         if sparsity_target is not None:
-            for i, n in enumerate(model.sizes[1:], start=1):
-                self.register_buffer(
-                    f"sparsity_mean_{i}", torch.full((n,), sparsity_target, dtype=model.dtype)
-                )
+            means = [torch.full((n,), sparsity_target, dtype=model.dtype) for n in model.sizes[1:]]
+            register_buffer_family(self, "sparsity_mean", means, start=1)
         self.last: Monitors | None = None
         # Set by wrap_distributed: running buffers are then averaged over the ranks, and the
         # divergence guard decides on all ranks together.
@@ -286,7 +276,7 @@ class TwoPhaseObjective(nn.Module):
         coefficients = Statistics(coefficients)
         deviation = {}
         for i in layers[1:]:
-            buffer = getattr(self, f"sparsity_mean_{i}")
+            buffer = buffer_family(self, "sparsity_mean", 1, start=i)[0]
             mean = self.sparsity_decay * buffer + (1.0 - self.sparsity_decay) * data[f"layers.{i}.bias"]
             running.append((buffer, mean))
             deviation[i] = self.sparsity_cost * (mean - self.sparsity_target)
@@ -316,7 +306,7 @@ class TwoPhaseObjective(nn.Module):
         """The centering offsets, one ``(n_i,)`` buffer per layer (empty without ``centering``)."""
         if not self.centering:
             return []
-        return [getattr(self, f"offset_{i}") for i in range(len(self.model.layers))]
+        return buffer_family(self, "offset", len(self.model.layers))
 
     def extra_repr(self) -> str:
         options = [f"max_weight={self.max_weight:g}"]
@@ -464,9 +454,7 @@ def weight_decay_groups(model: EnergyModel, weight_decay: float) -> list[dict]:
         ([2, 3], [0.0001, 0.0])
     """
     check_model(model)
-    weight_decay = check_real("weight_decay", weight_decay)
-    if not 0.0 <= weight_decay < math.inf:
-        raise ValueError(f"weight_decay must be >= 0 and finite, got {weight_decay}")
+    weight_decay = check_range("weight_decay", weight_decay, 0.0)
     weights = [p for c in model.couplings for p in c.parameters()]
     biases = [layer.bias for layer in model.layers]
     return [{"params": weights, "weight_decay": weight_decay}, {"params": biases, "weight_decay": 0.0}]
