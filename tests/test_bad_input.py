@@ -4,7 +4,7 @@ import pytest
 import torch
 
 import ebm_layers as el
-from tests.conftest import assert_unchanged, snapshot
+from tests.helpers import assert_unchanged, snapshot
 
 
 def _model() -> el.EnergyModel:

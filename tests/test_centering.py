@@ -20,8 +20,7 @@ import torch
 from torch import Tensor
 
 import ebm_layers as el
-from tests.conftest import assert_unchanged, snapshot
-from tests.test_objective import binary, closed_form_models, objective_gradient
+from tests.helpers import assert_unchanged, binary, closed_form_models, objective_gradient, snapshot
 
 F64 = torch.float64
 

@@ -25,11 +25,7 @@ from scipy.stats import chisquare
 
 import ebm_layers as el
 from ebm_layers.datasets import IMAGE_SHAPE, MARKING_SHARES, MARKING_TYPES, marking_templates, parts_markings
-
-
-def seeded(seed: int) -> torch.Generator:
-    return torch.Generator().manual_seed(seed)
-
+from tests.helpers import seeded
 
 # -- the generator --------------------------------------------------------------------------------
 

@@ -29,7 +29,7 @@ import torch.multiprocessing as mp
 
 import ebm_layers as el
 from ebm_layers.model.statistics import Statistics
-from tests.conftest import assert_unchanged, snapshot
+from tests.helpers import assert_unchanged, forkserver, snapshot
 
 pytestmark = pytest.mark.skipif(not dist.is_available(), reason="this torch build has no torch.distributed")
 
@@ -37,14 +37,19 @@ WORLD = 2
 DEADLINE = 90.0  # seconds for one group of processes, start-up included
 
 
-def run_ranks(worker, *args) -> None:
-    """Run ``worker(rank, *args)`` on ``WORLD`` spawned processes; terminate them past the deadline."""
-    context = mp.start_processes(worker, args=args, nprocs=WORLD, join=False, start_method="spawn")
-    ends = time.monotonic() + DEADLINE
+def run_ranks(worker, *args, deadline: float = DEADLINE) -> None:
+    """Run ``worker(rank, *args)`` on ``WORLD`` new processes; terminate them past the deadline.
+
+    The processes come from the fork server of tests/helpers.py, which has imported torch and the
+    library once: fresh processes, as spawned ones, without the imports' start-up time each.
+    """
+    forkserver()  # the server's preload list, set before it starts
+    context = mp.start_processes(worker, args=args, nprocs=WORLD, join=False, start_method="forkserver")
+    ends = time.monotonic() + deadline
     try:
         while not context.join(timeout=max(0.1, ends - time.monotonic())):
             if time.monotonic() > ends:
-                raise TimeoutError(f"the distributed run did not finish within {DEADLINE} s")
+                raise TimeoutError(f"the distributed run did not finish within {deadline} s")
     finally:
         for process in context.processes:
             if process.is_alive():
@@ -149,11 +154,16 @@ def test_distributed_gradient_and_parameters_equal_one_process_with_both_shards(
 # -- fit(distributed=True): rank-local particles, bit-identical resume ---------------------------
 
 
-def fit_worker(rank: int, folder: str, aid: str | None) -> None:
+AIDS = (None, "fast-weights", "replica-exchange")
+
+
+def fit_worker(rank: int, folder: str) -> None:
+    """For every mixing aid, in its own subfolder: a whole run, a run stopped after epoch 2, and
+    that run resumed. One group of processes serves all the aids (one start-up, not three)."""
     join_group(rank, folder)
     data = torch.bernoulli(torch.full((120, 10), 0.3), generator=torch.Generator().manual_seed(3))
 
-    def train(checkpoint: str, resume: str | None = None, stop_after: int | None = None) -> el.FitResult:
+    def train(out: Path, aid, checkpoint: str, resume: str | None = None, stop_after: int | None = None):
         def interrupt(state: el.FitState) -> None:  # as if the run had been killed after an epoch
             state.stop = state.event == "epoch" and state.epoch + 1 == stop_after
 
@@ -164,7 +174,7 @@ def fit_worker(rank: int, folder: str, aid: str | None) -> None:
             epochs=3,
             batch_size=10,
             progress=False,
-            checkpoint=Path(folder) / checkpoint,
+            checkpoint=out / checkpoint,
             resume=resume,
             callbacks=[interrupt],
             distributed=True,
@@ -172,20 +182,31 @@ def fit_worker(rank: int, folder: str, aid: str | None) -> None:
             generator=torch.Generator().manual_seed(5),
         )
 
-    for tag, result in (
-        ("whole", train("whole.pt")),
-        ("part", train("part.pt", stop_after=2)),
-        ("resumed", train("resumed.pt", resume=str(Path(folder) / "part.pt"))),
-    ):
-        state = {k: v.clone() for k, v in result.objective.state_dict().items()}
-        torch.save(state, Path(folder) / f"{tag}{rank}.pt")
+    for aid in AIDS:
+        out = Path(folder) / str(aid)
+        out.mkdir(exist_ok=True)
+        for tag, result in (
+            ("whole", train(out, aid, "whole.pt")),
+            ("part", train(out, aid, "part.pt", stop_after=2)),
+            ("resumed", train(out, aid, "resumed.pt", resume=str(out / "part.pt"))),
+        ):
+            state = {k: v.clone() for k, v in result.objective.state_dict().items()}
+            torch.save(state, out / f"{tag}{rank}.pt")
     dist.destroy_process_group()
 
 
-@pytest.mark.parametrize("aid", [None, "fast-weights", "replica-exchange"])
-def test_distributed_fit_keeps_rank_particles_and_resumes_each_rank_bit_identically(tmp_path, aid):
-    run_ranks(fit_worker, str(tmp_path), aid)
-    load = lambda name: torch.load(tmp_path / name, weights_only=True)  # noqa: E731
+@pytest.fixture(scope="module")
+def fitted_ranks(tmp_path_factory) -> Path:
+    """The folder of ``fit_worker``'s runs on two ranks, one subfolder per mixing aid."""
+    folder = tmp_path_factory.mktemp("fit")
+    run_ranks(fit_worker, str(folder), deadline=len(AIDS) * DEADLINE)  # one group, three aids' runs
+    return folder
+
+
+@pytest.mark.parametrize("aid", AIDS)
+def test_distributed_fit_keeps_rank_particles_and_resumes_each_rank_bit_identically(fitted_ranks, aid):
+    folder = fitted_ranks / str(aid)
+    load = lambda name: torch.load(folder / name, weights_only=True)  # noqa: E731
     for rank in range(WORLD):
         whole, resumed = load(f"whole{rank}.pt"), load(f"resumed{rank}.pt")
         assert whole.keys() == resumed.keys()
@@ -195,7 +216,7 @@ def test_distributed_fit_keeps_rank_particles_and_resumes_each_rank_bit_identica
     assert torch.equal(first["model.couplings.0.weight"], second["model.couplings.0.weight"])
     assert not torch.equal(first["negative.particles_0"], second["negative.particles_0"])
     assert not torch.equal(first["negative.generator_state"], second["negative.generator_state"])
-    checkpoint = el.load_checkpoint(tmp_path / "whole.pt")
+    checkpoint = el.load_checkpoint(folder / "whole.pt")
     assert len(checkpoint["ranks"]) == WORLD and checkpoint["epoch"] == 3
     for rank in range(WORLD):
         assert torch.equal(

@@ -6,16 +6,18 @@ and test_partition.py); exact enumeration (mathematics) through ``el.exact_log_p
 
 from __future__ import annotations
 
+import functools
+
 import pytest
 import torch
 
 import ebm_layers as el
-from tests.conftest import assert_unchanged, snapshot
-from tests.test_exact import build, randomize
+from tests import helpers
+from tests.helpers import assert_unchanged, snapshot
+from tests.reference import build, randomize
 
-
-def binary(shape, seed, p=0.4, dtype=torch.float64):
-    return torch.bernoulli(torch.full(shape, p, dtype=dtype), generator=torch.Generator().manual_seed(seed))
+# The data of this file: every unit on with probability 0.4.
+binary = functools.partial(helpers.binary, p=0.4)
 
 
 def test_exact_report_of_a_small_rbm():

@@ -1,10 +1,11 @@
-"""Smoke test of examples/pretrain_classifier.py: it runs with tiny settings and prints its table."""
+"""Smoke test of examples/pretrain_classifier.py: it runs with tiny settings and prints its table
+(in a new process, as ``python`` would run it: ``run_script`` of tests/helpers.py)."""
 
 import math
 import re
-import subprocess
-import sys
 from pathlib import Path
+
+from tests.helpers import run_script
 
 ROOT = Path(__file__).resolve().parents[1]
 ROWS = (
@@ -16,15 +17,9 @@ ROWS = (
 
 def test_pretrain_classifier_example_runs_and_prints_three_accuracies():
     # Source of the check: common practice, no source (a smoke test: it runs, and its numbers are sane).
-    result = subprocess.run(
-        [
-            sys.executable,
-            str(ROOT / "examples" / "pretrain_classifier.py"),
-            *"--epochs 1 --pretrain-epochs 1 --finetune-epochs 1 --no-progress".split(),
-        ],
-        capture_output=True,
-        text=True,
-        timeout=120,
+    result = run_script(
+        ROOT / "examples" / "pretrain_classifier.py",
+        *"--epochs 1 --pretrain-epochs 1 --finetune-epochs 1 --no-progress".split(),
     )
     assert result.returncode == 0, result.stderr
     lines = result.stdout.splitlines()

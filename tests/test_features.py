@@ -17,8 +17,8 @@ from torch.func import functional_call
 
 import ebm_layers as el
 from ebm_layers.features import ConcatenatedLayers, FeatureExtractor, feedforward_network
-from tests.conftest import assert_unchanged, snapshot
-from tests.test_exact import randomize
+from tests.helpers import assert_unchanged, snapshot
+from tests.reference import randomize
 
 DTYPE = torch.float64
 

@@ -1,7 +1,7 @@
 """Mean-field inference against independent formulas.
 
 The reference fixed-point equation and mean-field free energy are written from the
-mathematics over the stacked units (``interaction_matrix`` of ``tests/test_exact.py``, in
+mathematics over the stacked units (``interaction_matrix`` of ``tests/reference.py``, in
 numpy): mu = sigmoid(b + mu J) on the free units, and F_MF(mu) = -b.mu - 1/2 mu J mu^T - H(mu)
 with H the entropy of independent Bernoulli units. Gradients are checked with
 ``torch.autograd.gradcheck`` (finite differences).
@@ -18,11 +18,11 @@ from scipy.special import expit
 from torch.func import functional_call
 
 import ebm_layers as el
-from tests.conftest import assert_unchanged, snapshot
-from tests.test_exact import brute_force, build, interaction_matrix, randomize
+from tests.helpers import assert_unchanged, snapshot
+from tests.reference import brute_force, build, interaction_matrix, randomize
 
 DTYPE = torch.float64
-# Model shapes of tests/test_exact.py with their layer sizes: free layers coupled in a chain, by a
+# Model shapes of tests/reference.py with their layer sizes: free layers coupled in a chain, by a
 # skip-layer coupling (three colour classes), laterally, and the RBM.
 MODELS = {
     "rbm": (5, 3),

@@ -1,7 +1,8 @@
 """Model metrics against brute-force enumeration, direct formulas and a reference library.
 
-The ground truth is ``tests.test_exact``: ``brute_force`` enumerates every joint state from the
-energy formula alone, and ``visible_marginal`` gives every visible vector with its exact log p(v).
+The ground truth is ``tests/reference.py``: ``brute_force`` enumerates every joint state from the
+energy formula alone, ``visible_marginal`` gives every visible vector with its exact log p(v), and
+``exact_log_marginal`` the exact log p(v) of given rows.
 """
 
 from __future__ import annotations
@@ -19,18 +20,16 @@ from torch import Tensor
 import ebm_layers as el
 from ebm_layers.evaluation import metrics
 from ebm_layers.evaluation.partition import ais_log_partition
-from tests.conftest import assert_unchanged, snapshot
-from tests.test_exact import (
+from tests.helpers import assert_close, assert_unchanged, close, snapshot
+from tests.reference import (
     CLOSED_FORM,
     SHAPES,
-    assert_close,
     brute_force,
     build,
-    close,
+    exact_log_marginal,
     randomize,
     visible_marginal,
 )
-from tests.test_partition import exact_log_marginal
 
 DEEP = ["chain3", "chain4", "skip", "hidden_lateral_chain"]  # no closed-form free energy
 

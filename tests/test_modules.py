@@ -10,7 +10,7 @@ from scipy.special import logit
 
 import ebm_layers as el
 from ebm_layers.model.graph import colour_classes, smallest_cover
-from tests.conftest import make_lateral_model
+from tests.helpers import make_lateral_model
 
 
 def test_builders_shapes_and_initialisation(generator):

@@ -6,7 +6,7 @@ Sources of the checks:
   ``el.exact_log_partition`` and the closed-form free energy (mathematics; both checked against
   brute-force enumeration in ``tests/test_exact.py``);
 - exact posterior averages by enumerating every hidden state of each example
-  (``tests.test_exact.brute_force``, mathematics);
+  (``brute_force`` of ``tests/reference.py``, mathematics);
 - Monte-Carlo error: z-scores of averages over independent chains, standard errors from the
   spread of the chains (common practice, no source).
 
@@ -21,32 +21,11 @@ from torch import Tensor
 from torch.utils._python_dispatch import TorchDispatchMode
 
 import ebm_layers as el
-from tests.conftest import assert_unchanged, make_lateral_model, snapshot
-from tests.test_exact import brute_force, build, randomize
+from tests.helpers import assert_unchanged, binary, closed_form_models, objective_gradient, snapshot
+from tests.reference import brute_force, build, randomize
 
 F64 = torch.float64
 Z_BOUND = 4.5  # about 40 entries per check: a |z| above 4.5 by chance has probability below 3e-4
-
-
-def binary(shape: tuple[int, ...], seed: int, dtype: torch.dtype = F64) -> Tensor:
-    generator = torch.Generator().manual_seed(seed)
-    return torch.bernoulli(torch.full(shape, 0.5, dtype=dtype), generator=generator)
-
-
-def closed_form_models() -> dict[str, el.EnergyModel]:
-    """Float64 models with a closed-form F(v), parameters from N(0, 1)."""
-    lateral = make_lateral_model().double()
-    return {
-        "rbm": randomize(build("rbm", (5, 3)), seed=0, scale=1.0),
-        "visible_lateral": randomize(lateral, seed=1, scale=1.0),
-    }
-
-
-def objective_gradient(objective: el.TwoPhaseObjective, v: Tensor) -> list[Tensor]:
-    model = objective.model
-    model.zero_grad()
-    objective(v).backward()
-    return [p.grad.clone() for p in model.parameters()]
 
 
 def likelihood_gradient(model: el.EnergyModel, v: Tensor) -> list[Tensor]:

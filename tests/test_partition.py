@@ -4,7 +4,8 @@ log p(v), against exact enumeration.
 Sources of the checks:
 
 - exact log Z and log p(v): ``el.exact_log_partition`` (checked against brute force in
-  test_exact.py) and ``tests.test_exact.brute_force`` (every joint state, mathematics);
+  test_exact.py) and ``brute_force`` / ``exact_log_marginal`` of ``tests/reference.py`` (every
+  joint state, mathematics);
 - unbiasedness: the mean importance weight of AIS is an unbiased estimate of Z / Z_A ("Annealed
   Importance Sampling", Neal, Statistics and Computing, 2001), and the reverse weight is unbiased
   for the probability that the forward annealing process generates v ("Accurate and
@@ -20,6 +21,7 @@ Every random draw uses a seeded ``torch.Generator``; measured margins are quoted
 from __future__ import annotations
 
 import copy
+import functools
 import itertools
 import math
 
@@ -31,32 +33,21 @@ from torch import Tensor
 import ebm_layers as el
 from ebm_layers.evaluation import partition
 from ebm_layers.evaluation.partition import ais_log_partition, annealing_schedule, reverse_ais_log_likelihood
-from tests.conftest import assert_unchanged, snapshot
-from tests.test_exact import brute_force, build, randomize
+from tests import helpers
+from tests.helpers import assert_unchanged, seeded, snapshot
+from tests.reference import brute_force, build, exact_log_marginal, randomize
 
 F64 = torch.float64
 Z_BOUND = 4.5
 
 
-def seeded(seed: int) -> torch.Generator:
-    return torch.Generator().manual_seed(seed)
-
-
-def binary(shape: tuple[int, ...], seed: int, p: float = 0.4, dtype: torch.dtype = F64) -> Tensor:
-    return torch.bernoulli(torch.full(shape, p, dtype=dtype), generator=seeded(seed))
+# The data of this file: every unit on with probability 0.4.
+binary = functools.partial(helpers.binary, p=0.4)
 
 
 @torch.no_grad()
 def exact_log_z(model: el.EnergyModel) -> float:
     return float(el.exact_log_partition(model))
-
-
-def exact_log_marginal(model: el.EnergyModel, v: Tensor) -> Tensor:
-    """log p(v) per row by summing the brute-force joint over the hidden states (mathematics)."""
-    ref = brute_force(model)
-    return torch.stack(
-        [torch.logsumexp(-ref.energy[(ref.states[0] == row).all(1)], 0) - ref.log_z for row in v]
-    )
 
 
 # ---------------------------------------------------------------------------------------------
@@ -87,17 +78,6 @@ def test_exact_log_z_lies_in_the_bracket_on_tiny_models(shape, sizes):
     assert estimate.lower <= exact <= estimate.upper, (estimate, exact)
     assert abs(estimate.log_z - exact) < 4 * estimate.stderr + 1e-3  # measured: within 1.4 standard errors
     assert estimate.log_weights.dtype == F64 and estimate.log_weights.shape == (200,)
-
-
-@pytest.fixture(scope="module")
-def digits() -> tuple[Tensor, Tensor]:
-    from sklearn.datasets import load_digits
-    from sklearn.model_selection import train_test_split
-
-    x, y = load_digits(return_X_y=True)
-    x = (x >= 8).astype(np.float32)
-    train, test = train_test_split(x, test_size=0.3, random_state=0, stratify=y)[:2]
-    return torch.from_numpy(train), torch.from_numpy(test)
 
 
 def trained(sizes: tuple[int, ...], train: Tensor, epochs: int) -> el.EnergyModel:

@@ -9,7 +9,6 @@ practice, no source).
 
 from __future__ import annotations
 
-import numpy as np
 import pytest
 import torch
 from torch.utils.data import DataLoader, TensorDataset
@@ -18,7 +17,7 @@ import ebm_layers as el
 from ebm_layers.model import functional as F
 from ebm_layers.training.pretraining import DEFAULT_PRETRAIN_EPOCHS
 from ebm_layers.training.pretraining import _free as free
-from tests.conftest import assert_unchanged, snapshot
+from tests.helpers import assert_unchanged, binarised_digits, snapshot
 
 
 def random_data(rows: int, columns: int, seed: int) -> torch.Tensor:
@@ -82,9 +81,7 @@ def test_each_rbm_learns_from_the_marginals_of_the_one_below():
 
 @pytest.fixture(scope="module")
 def digits() -> torch.Tensor:
-    from sklearn.datasets import load_digits
-
-    x = (load_digits().data >= 8).astype(np.float32)
+    x, _ = binarised_digits()
     return torch.from_numpy(x[:600])
 
 
@@ -226,12 +223,10 @@ def test_pretrained_features_beat_raw_pixels():
     # (scikit-learn) over all 1797 images of the bundled 8x8 digits, on the frozen mean-field
     # features against the raw pixels. Cross-validating over every image measures the features with
     # less noise than one split's 540 test images, whose accuracy moves by a point with rounding.
-    from sklearn.datasets import load_digits
     from sklearn.linear_model import LogisticRegression
     from sklearn.model_selection import StratifiedKFold, cross_val_score, train_test_split
 
-    x, y = load_digits(return_X_y=True)
-    x = (x >= 8).astype(np.float32)
+    x, y = binarised_digits()
     train = train_test_split(x, test_size=0.3, random_state=0, stratify=y)[0]
     g = torch.Generator().manual_seed(0)
     model = el.dbm(64, 100, 50, generator=g)

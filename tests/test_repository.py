@@ -1,13 +1,17 @@
-"""The repository's promises: README commands, CI script, packaging, and the quickstart runs."""
+"""The repository's promises: README commands, CI script, packaging, and the quickstart runs.
+
+Scripts run as ``python script.py ...`` would, each in a new process (``run_script`` of
+tests/helpers.py: forked from a server that has imported torch and the library once).
+"""
 
 import json
 import math
 import re
-import subprocess
-import sys
 from pathlib import Path
 
 import pytest
+
+from tests.helpers import run_script
 
 ROOT = Path(__file__).resolve().parents[1]
 TORCH_PIN = "torch==2.13.0"
@@ -48,11 +52,9 @@ def test_gitignore_covers_environments_caches_outputs_and_checkpoints():
 
 
 def test_custom_modules_example_runs_at_tiny_size(tmp_path):
-    result = subprocess.run(
-        [sys.executable, str(ROOT / "examples" / "custom_modules.py"), "--examples", "100", "--epochs", "1"]
-        + ["--hidden", "8", "--num-betas", "20"],
-        capture_output=True,
-        text=True,
+    result = run_script(
+        ROOT / "examples" / "custom_modules.py",
+        *"--examples 100 --epochs 1 --hidden 8 --num-betas 20".split(),
         timeout=300,
         cwd=tmp_path,
     )
@@ -62,12 +64,7 @@ def test_custom_modules_example_runs_at_tiny_size(tmp_path):
 
 
 def test_small_models_example_runs_and_prints_exact_log_partition():
-    result = subprocess.run(
-        [sys.executable, str(ROOT / "examples" / "small_models.py")],
-        capture_output=True,
-        text=True,
-        timeout=120,
-    )
+    result = run_script(ROOT / "examples" / "small_models.py")
     assert result.returncode == 0, result.stderr
     assert result.stdout.count("exact log partition function:") == 2
     assert "E(v, h)" in result.stdout
@@ -78,13 +75,7 @@ def test_small_models_example_runs_and_prints_exact_log_partition():
 
 def test_quickstart_trains_and_saves_samples(tmp_path):
     # A smoke test (common practice, no source): it runs as written and saves its picture.
-    result = subprocess.run(
-        [sys.executable, str(ROOT / "examples" / "quickstart.py")],
-        capture_output=True,
-        text=True,
-        timeout=120,
-        cwd=tmp_path,
-    )
+    result = run_script(ROOT / "examples" / "quickstart.py", cwd=tmp_path)
     assert result.returncode == 0, result.stderr
     gaps = [float(line.split()[-1]) for line in result.stdout.splitlines() if line.startswith("epoch")]
     assert len(gaps) == 30 and all(math.isfinite(gap) for gap in gaps)
@@ -96,13 +87,8 @@ def test_parts_markings_demo_runs_at_tiny_size(tmp_path):
     # finite numbers (the conservative estimate and every share included).
     out = tmp_path / "demo"
     arguments = "--epochs 1 --pretrain-epochs 1 --examples 200 --test-examples 100 --betas 20 --burn-in 5"
-    result = subprocess.run(
-        [sys.executable, str(ROOT / "examples" / "parts_markings.py"), *arguments.split(), "--no-progress"]
-        + ["--out", str(out)],
-        capture_output=True,
-        text=True,
-        timeout=180,
-    )
+    demo = ROOT / "examples" / "parts_markings.py"
+    result = run_script(demo, *arguments.split(), "--no-progress", "--out", str(out), timeout=180)
     assert result.returncode == 0, result.stderr
     for row in ("log-likelihood, reverse AIS", "accuracy, chain features", "share of each marking type"):
         assert row in result.stdout
@@ -118,19 +104,13 @@ def test_parts_markings_demo_runs_at_tiny_size(tmp_path):
     assert len(numbers) > 20 and all(math.isfinite(number) for number in numbers)
     assert sum(report["shares"]["samples"].values()) == pytest.approx(1.0)
     assert (out / "training.png").stat().st_size > 100  # matplotlib is in the test extra
-    demo = [sys.executable, str(ROOT / "examples" / "parts_markings.py")]
-    help_text = subprocess.run([*demo, "--help"], capture_output=True, text=True).stdout
+    help_text = run_script(demo, "--help").stdout
     for option in ("--epochs", "--seed", "--out", "--no-progress"):
         assert option in help_text
 
 
 def run_own_loop(*arguments: str) -> list[str]:
-    result = subprocess.run(
-        [sys.executable, str(ROOT / "examples" / "own_loop.py"), *arguments],
-        capture_output=True,
-        text=True,
-        timeout=120,
-    )
+    result = run_script(ROOT / "examples" / "own_loop.py", *arguments)
     assert result.returncode == 0, result.stderr
     return result.stdout.splitlines()
 
@@ -211,11 +191,6 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
 )
 def test_benchmarks_run_at_tiny_size(script, arguments, expected):
     # A smoke test only: benchmarks print ratios and are never timed inside the suite.
-    result = subprocess.run(
-        [sys.executable, str(ROOT / "benchmarks" / script), *arguments],
-        capture_output=True,
-        text=True,
-        timeout=120,
-    )
+    result = run_script(ROOT / "benchmarks" / script, *arguments)
     assert result.returncode == 0, result.stderr
     assert expected in result.stdout

@@ -3,7 +3,7 @@
 Sources of the checks:
 
 - exact enumeration (mathematics): the distribution p(x) = exp(-E(x)) / Z over every joint state
-  of a model with at most 8 units, computed by ``tests.test_exact.brute_force`` from the energy
+  of a model with at most 8 units, computed by ``brute_force`` of ``tests/reference.py`` from the energy
   formula alone (all units stacked, E(x) = -b.x - 1/2 x J x^T), without the library's code.
 - the total-variation bound: the chains' empirical distribution must be about as close to p as
   the same number of exact independent draws (``torch.multinomial``) is; common practice, no
@@ -27,8 +27,8 @@ import torch
 from torch import Tensor
 
 import ebm_layers as el
-from tests.conftest import assert_unchanged, snapshot
-from tests.test_exact import Reference, brute_force, build, randomize
+from tests.helpers import assert_unchanged, snapshot
+from tests.reference import Reference, brute_force, build, randomize
 
 # ---------------------------------------------------------------------------------------------
 # Stationarity: the chains against exact enumeration.
@@ -42,7 +42,7 @@ IID_REPLICATES = 5
 TV_FACTOR, TV_SLACK = 2.0, 0.01
 Z_BOUND = 5.0
 
-# name: (shape in tests.test_exact.SHAPES, layer sizes, seed of the parameters, coupling to double)
+# name: (shape in SHAPES of tests/reference.py, layer sizes, seed of the parameters, coupling to double)
 MODELS = {
     "rbm": ("rbm", (5, 3), 0, None),
     "chain": ("chain3", (3, 3, 2), 1, None),

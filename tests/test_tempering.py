@@ -23,7 +23,7 @@ import torch
 import ebm_layers as el
 from ebm_layers.model.statistics import Statistics
 from ebm_layers.phases.replica_exchange import ReplicaExchangeSampler
-from tests.test_exact import build, randomize
+from tests.reference import build, randomize
 
 F64 = torch.float64
 PARTICLES, REPLICAS = 20_000, 4

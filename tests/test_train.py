@@ -27,18 +27,7 @@ import torch
 from torch.utils.data import DataLoader, TensorDataset
 
 import ebm_layers as el
-from tests.conftest import assert_unchanged, snapshot
-
-
-@pytest.fixture(scope="module")
-def digits() -> tuple[torch.Tensor, torch.Tensor]:
-    from sklearn.datasets import load_digits
-    from sklearn.model_selection import train_test_split
-
-    x, y = load_digits(return_X_y=True)
-    x = (x >= 8).astype(np.float32)
-    train, test = train_test_split(x, test_size=0.3, random_state=0, stratify=y)[:2]
-    return torch.from_numpy(train), torch.from_numpy(test)
+from tests.helpers import assert_unchanged, snapshot
 
 
 def base_rate_log_likelihood(train: np.ndarray, test: np.ndarray) -> float:
