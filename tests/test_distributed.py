@@ -117,6 +117,7 @@ def reference_step(objective, sampler, shards: torch.Tensor, particles: list[tor
     objective(shards).backward()
 
 
+@pytest.mark.slow
 def test_distributed_gradient_and_parameters_equal_one_process_with_both_shards(tmp_path):
     run_ranks(equivalence_worker, str(tmp_path))
     ranks = [torch.load(tmp_path / f"rank{r}.pt", weights_only=True) for r in range(WORLD)]

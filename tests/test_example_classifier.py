@@ -5,6 +5,8 @@ import math
 import re
 from pathlib import Path
 
+import pytest
+
 from tests.helpers import run_script
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -15,6 +17,7 @@ ROWS = (
 )
 
 
+@pytest.mark.slow
 def test_pretrain_classifier_example_runs_and_prints_three_accuracies():
     # Source of the check: common practice, no source (a smoke test: it runs, and its numbers are sane).
     result = run_script(

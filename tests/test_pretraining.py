@@ -92,6 +92,7 @@ def units_in_use(model: el.EnergyModel, data: torch.Tensor) -> list[float]:
     return [float((mu.std(0) > 0.1).float().mean()) for mu in marginals[1:]]
 
 
+@pytest.mark.slow
 def test_pretraining_leaves_every_layer_in_use(digits):
     def trained(**options) -> el.EnergyModel:
         g = torch.Generator().manual_seed(0)
@@ -217,9 +218,11 @@ def test_bad_pretraining_arguments_change_nothing(case):
     assert_unchanged(model, before)
 
 
+@pytest.mark.slow
 def test_pretrained_features_beat_raw_pixels():
     # A CI-sized version of benchmarks/digits_features.py: one chain trained by fit's defaults on the
-    # training images of its first split (no labels), then 5-fold cross-validated logistic regression
+    # training images of its first split (no labels), except 10 joint epochs instead of 100 after
+    # the default pretraining, then 5-fold cross-validated logistic regression
     # (scikit-learn) over all 1797 images of the bundled 8x8 digits, on the frozen mean-field
     # features against the raw pixels. Cross-validating over every image measures the features with
     # less noise than one split's 540 test images, whose accuracy moves by a point with rounding.
@@ -230,7 +233,7 @@ def test_pretrained_features_beat_raw_pixels():
     train = train_test_split(x, test_size=0.3, random_state=0, stratify=y)[0]
     g = torch.Generator().manual_seed(0)
     model = el.dbm(64, 100, 50, generator=g)
-    el.fit(model, torch.from_numpy(train), progress=False, generator=g)
+    el.fit(model, torch.from_numpy(train), epochs=10, progress=False, generator=g)
     with torch.no_grad():
         features = el.FeatureExtractor(model)(torch.from_numpy(x)).numpy()
     folds = StratifiedKFold(5, shuffle=True, random_state=0)
@@ -239,5 +242,6 @@ def test_pretrained_features_beat_raw_pixels():
         return cross_val_score(LogisticRegression(max_iter=5000), inputs, y, cv=folds).mean()
 
     raw, learned = accuracy(x), accuracy(features)
-    # Measured: raw 92.4%, features 93.7% (seeds 0-3 on one thread: 93.5% to 94.2%).
+    # Measured: raw 92.4%, features 93.3% (seeds 0-2: 93.1% to 93.5%; 100 joint epochs: 93.5% to
+    # 94.2%; 10 pretraining epochs per RBM instead of 30: 91.3% to 91.8%, below the raw pixels).
     assert learned >= raw + 0.005, (learned, raw)

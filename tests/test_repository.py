@@ -63,6 +63,7 @@ def test_custom_modules_example_runs_at_tiny_size(tmp_path):
     assert (tmp_path / "out" / "custom_modules_samples.png").exists()
 
 
+@pytest.mark.slow
 def test_small_models_example_runs_and_prints_exact_log_partition():
     result = run_script(ROOT / "examples" / "small_models.py")
     assert result.returncode == 0, result.stderr
@@ -73,6 +74,7 @@ def test_small_models_example_runs_and_prints_exact_log_partition():
     assert "own loop, 20 epochs" in result.stdout and "fit, 20 epochs" in result.stdout
 
 
+@pytest.mark.slow
 def test_quickstart_trains_and_saves_samples(tmp_path):
     # A smoke test (common practice, no source): it runs as written and saves its picture.
     result = run_script(ROOT / "examples" / "quickstart.py", cwd=tmp_path)
@@ -115,6 +117,7 @@ def run_own_loop(*arguments: str) -> list[str]:
     return result.stdout.splitlines()
 
 
+@pytest.mark.slow
 def test_own_loop_example_runs_and_resumes_identically(tmp_path):
     whole = run_own_loop("--epochs", "3", "--checkpoint", str(tmp_path / "whole.pt"))
     assert "test log p" in whole[0] and (tmp_path / "whole.pt").exists()
@@ -139,7 +142,12 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
     [
         ("enumeration.py", ["--visible", "8", "--hidden", "5"], "plain one-shot torch / exact_log_partition"),
         ("meanfield.py", ["--sizes", "12", "8", "6", "--batch", "4"], "GEMM roofline/call"),
-        ("ais.py", ["--epochs", "1", "--betas", "20", "--repeats", "1"], "reverse (low on average)"),
+        pytest.param(
+            "ais.py",
+            "--epochs 1 --pretrain-epochs 1 --betas 20 --repeats 1".split(),
+            "reverse (low on average)",
+            marks=pytest.mark.slow,
+        ),
         ("ais.py", ["--speed", "--betas", "20"], "AIS / products"),
         (
             "training_step.py",
@@ -151,10 +159,11 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
             ["--seeds", "0", "--epochs", "1", "--reference-steps", "2"],
             "CD-1 in the same time",
         ),
-        (
+        pytest.param(
             "defaults.py",
             "--tiny --epochs 1 --seeds 0 --rates 0.03 --phases plain re2s2 --reference-steps 2".split(),
             "best:",
+            marks=pytest.mark.slow,
         ),
         (
             "sweep.py",
@@ -177,15 +186,17 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
             "--burn-in 2 --betas 10".split(),
             "medians over seeds",
         ),
-        (
+        pytest.param(
             "distributed.py",
             "--examples 400 --sizes 20 10".split(),
             "scaling efficiency",
+            marks=pytest.mark.slow,
         ),
-        (
+        pytest.param(
             "digits_features.py",
             "--splits 0 --epochs 1 --pretrain-epochs 1 --finetune-epochs 1 --ais-betas 10 --compare".split(),
             "fine-tuned:",
+            marks=pytest.mark.slow,
         ),
     ],
 )

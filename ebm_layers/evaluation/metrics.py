@@ -643,6 +643,28 @@ class Evaluation:
 
 
 @torch.no_grad()
+def _report_log_z(
+    model: EnergyModel,
+    data: Tensor,
+    log_z,
+    num_chains: int,
+    num_betas: int,
+    generator: torch.Generator,
+    progress: bool,
+) -> tuple[float | Tensor | Estimate, str, Estimate | None]:
+    """The ``log Z`` of :func:`evaluate`'s report, where it comes from, and the AIS estimate if one
+    was run: ``log_z`` as given, else exact by enumeration when cheap, else forward AIS."""
+    if log_z is not None:
+        return log_z, "given", None
+    cover = smallest_cover([_state_bits(layer) for layer in model.layers], model.edges)
+    if _joint_state_count(model, cover) <= EVALUATE_EXACT_STATES:
+        return float(exact_log_partition(model)), "exact (enumeration)", None
+    estimate = ais_log_partition(
+        model, num_chains=num_chains, num_betas=num_betas, data=data, generator=generator, progress=progress
+    )
+    return estimate, "forward AIS", estimate
+
+
 def evaluate(
     model: EnergyModel,
     data: Tensor,
@@ -693,21 +715,7 @@ def evaluate(
         test = model.checked("test", test, convert=True)
     reverse_examples = check_size("reverse_examples", reverse_examples)
     generator = resolve_generator(generator)
-    estimate, source = None, "given"
-    cover = smallest_cover([_state_bits(layer) for layer in model.layers], model.edges)
-    enumerated_states = _joint_state_count(model, cover)
-    if log_z is None and enumerated_states <= EVALUATE_EXACT_STATES:
-        log_z, source = float(exact_log_partition(model)), "exact (enumeration)"
-    elif log_z is None:
-        estimate = ais_log_partition(
-            model,
-            num_chains=num_chains,
-            num_betas=num_betas,
-            data=data,
-            generator=generator,
-            progress=progress,
-        )
-        log_z, source = estimate, "forward AIS"
+    log_z, source, estimate = _report_log_z(model, data, log_z, num_chains, num_betas, generator, progress)
     log_z_value, estimated = _check_log_z(log_z)
     cautions = [] if estimate is None or estimate.warning is None else [estimate.warning]
     closed_form = model.has_free_energy

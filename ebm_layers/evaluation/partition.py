@@ -344,7 +344,7 @@ def _base_parameters(model: EnergyModel, data: Tensor | None, base: str | None) 
             f"{type(model.layers[0]).__name__}: use base='uniform'"
         )
     data = check_batch("data", data, model.sizes[0])
-    rates = data.detach().to(torch.float64).mean(0)
+    rates = F.base_rates(data)
     clipped = rates.clamp(RATE_CLIP, 1.0 - RATE_CLIP)
     outside = int((clipped != rates).sum())
     if outside:

@@ -406,11 +406,14 @@ def _pulled_back(module: nn.Module, statistics: Mapping[str, Tensor]) -> Iterabl
         if name in module._parameters or not parametrize.is_parametrized(module, name):
             out.append((name, value))
             continue
-        free_name = f"parametrizations.{name}.original"
-        free = module.get_parameter(free_name).detach().requires_grad_()
-        with torch.enable_grad(), substituted(module, {free_name: free}):
-            (pulled,) = torch.autograd.grad(getattr(module, name), free, value)
-        out.append((free_name, pulled))
+        chain = module.parametrizations[name]  # the parametrizations applied in turn to .original
+        free = chain.original.detach().requires_grad_()
+        with torch.enable_grad():
+            tensor = free
+            for parametrization in chain:
+                tensor = parametrization(tensor)
+            (pulled,) = torch.autograd.grad(tensor, free, value)
+        out.append((f"parametrizations.{name}.original", pulled))
     return out
 
 

@@ -11,14 +11,20 @@ from concurrent.futures import ThreadPoolExecutor
 import torch
 from torch import Tensor
 
-__all__ = ["base_rate_logits", "sample_bernoulli", "Uniforms"]
+__all__ = ["base_rates", "base_rate_logits", "sample_bernoulli", "Uniforms"]
+
+
+def base_rates(data: Tensor, pseudocount: float = 0.0) -> Tensor:
+    """The smoothed base rates ``(n,)`` (float64) of binary ``data`` ``(B, n)``:
+    ``p_i = (sum_b v_bi + pseudocount) / (B + 2 pseudocount)``."""
+    counts = data.detach().to(torch.float64).sum(0)
+    return (counts + pseudocount) / (data.shape[0] + 2 * pseudocount)
 
 
 def base_rate_logits(data: Tensor, pseudocount: float) -> Tensor:
-    """Log-odds ``(n,)`` (float64) of the smoothed base rates of ``data`` ``(B, n)``:
-    ``p_i = (sum_b v_bi + pseudocount) / (B + 2 pseudocount)``."""
-    counts = data.detach().to(torch.float64).sum(0)
-    return torch.logit((counts + pseudocount) / (data.shape[0] + 2 * pseudocount))
+    """Log-odds ``(n,)`` (float64) of :func:`base_rates`: the biases of independent binary units
+    that reproduce them."""
+    return torch.logit(base_rates(data, pseudocount))
 
 
 # torch's uniform_ draws float32 on the grid k / 2^24 and float64 on k / 2^53 (checked in
