@@ -61,6 +61,11 @@ class EnergyModel(nn.Module):
         self.edges: tuple[tuple[int, int], ...] = tuple((c.a, c.b) for c in couplings)
         # The couplings touching each layer, with their ends.
         self._parts = (*layers, *couplings)  # a plain tuple (not registered twice): dtype's quick look
+        # Where each module's statistics go in named_parameters() (statistics() runs on every step).
+        self._layer_prefixes = tuple((f"layers.{i}.", layer) for i, layer in enumerate(layers))
+        self._coupling_prefixes = tuple(
+            (f"couplings.{k}.", c, e) for k, (c, e) in enumerate(zip(couplings, self.edges))
+        )
         self._touching: list[list[tuple[Coupling, tuple[int, int]]]] = [
             [(c, e) for c, e in zip(couplings, self.edges) if i in e] for i in range(len(layers))
         ]
@@ -174,12 +179,10 @@ class EnergyModel(nn.Module):
         every module's average ``-dE/dtheta``, keyed like ``named_parameters()``; weighted by
         ``weights`` ``(B,)`` (summing to one) when given. Not checked: the phases call it."""
         out = Statistics()
-        for i, layer in enumerate(self.layers):
-            for name, value in _pulled_back(layer, layer.statistics(states[i], weights)):
-                out["layers." + str(i) + "." + name] = value
-        for k, (coupling, (a, b)) in enumerate(zip(self.couplings, self.edges)):
-            for name, value in _pulled_back(coupling, coupling.statistics(states[a], states[b], weights)):
-                out["couplings." + str(k) + "." + name] = value
+        for i, (prefix, layer) in enumerate(self._layer_prefixes):
+            _collect(out, prefix, layer, layer.statistics(states[i], weights))
+        for prefix, coupling, (a, b) in self._coupling_prefixes:
+            _collect(out, prefix, coupling, coupling.statistics(states[a], states[b], weights))
         return out
 
     def layer_input(
@@ -395,12 +398,20 @@ class EnergyModel(nn.Module):
         return f"sizes={list(self.sizes)}, edges={list(self.edges)}"
 
 
+def _collect(out: Statistics, prefix: str, module: nn.Module, statistics: Mapping[str, Tensor]) -> None:
+    """Put a module's statistics into ``out`` under ``prefix`` + its parameter names."""
+    if "parametrizations" not in module._modules:  # parametrize.is_parametrized(module), looked up directly
+        for name, value in statistics.items():
+            out[prefix + name] = value
+        return
+    for name, value in _pulled_back(module, statistics):
+        out[prefix + name] = value
+
+
 def _pulled_back(module: nn.Module, statistics: Mapping[str, Tensor]) -> Iterable[tuple[str, Tensor]]:
     """A module's statistics keyed by its parameters: a statistic of a tensor that another module
     computes from a free tensor (``torch.nn.utils.parametrize``, such as tied copies of a bias) is
     pulled back to that free tensor by the chain rule."""
-    if not parametrize.is_parametrized(module):
-        return statistics.items()
     out = []
     for name, value in statistics.items():
         if name in module._parameters or not parametrize.is_parametrized(module, name):
