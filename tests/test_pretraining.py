@@ -15,6 +15,7 @@ from torch.utils.data import DataLoader, TensorDataset
 
 import ebm_layers as el
 from ebm_layers.model import functional as F
+from ebm_layers.training import pretraining
 from ebm_layers.training.pretraining import DEFAULT_PRETRAIN_EPOCHS
 from ebm_layers.training.pretraining import _free as free
 from tests.helpers import assert_unchanged, binarised_digits, snapshot
@@ -245,3 +246,33 @@ def test_pretrained_features_beat_raw_pixels():
     # Measured: raw 92.4%, features 93.3% (seeds 0-2: 93.1% to 93.5%; 100 joint epochs: 93.5% to
     # 94.2%; 10 pretraining epochs per RBM instead of 30: 91.3% to 91.8%, below the raw pixels).
     assert learned >= raw + 0.005, (learned, raw)
+
+
+@pytest.mark.parametrize("copies, dim", [(2, 0), (2, 1), (3, 1)])
+def test_tied_copies_pull_statistics_back_as_autograd_does(copies, dim):
+    # Source: mathematics (the adjoint of a linear map), checked against torch.autograd.grad.
+    tie = pretraining._TiedCopies(copies, dim)
+    g = torch.Generator().manual_seed(0)
+    free_tensor = torch.randn(4, 3, generator=g, dtype=torch.float64, requires_grad=True)
+    statistic = torch.randn(tie(free_tensor).shape, generator=g, dtype=torch.float64)
+    (expected,) = torch.autograd.grad(tie(free_tensor), free_tensor, statistic)
+    torch.testing.assert_close(tie.pull_back(statistic), expected)
+    # Negative control: keeping the first copy's share only is not the adjoint.
+    assert not torch.allclose(statistic.chunk(copies, dim=dim)[0], expected)
+
+
+@pytest.mark.parametrize("visible_copies, hidden_copies", [(2, 1), (1, 2)])
+def test_a_tied_stage_has_the_same_statistics_with_and_without_the_shortcut(
+    monkeypatch, visible_copies, hidden_copies
+):
+    # The pull_back shortcut against the generic autograd path of EnergyModel.statistics.
+    g = torch.Generator().manual_seed(1)
+    stage = el.rbm(5 * visible_copies, 3 * hidden_copies, generator=g, dtype=torch.float64)
+    pretraining._tie(stage, visible_copies, hidden_copies)
+    states = [torch.rand(7, n, generator=g, dtype=torch.float64) for n in stage.sizes]
+    short = stage.statistics(states)
+    monkeypatch.delattr(pretraining._TiedCopies, "pull_back")
+    generic = stage.statistics(states)
+    assert short.keys() == generic.keys() == {name for name, _ in stage.named_parameters()}
+    for name in short:
+        torch.testing.assert_close(short[name], generic[name])

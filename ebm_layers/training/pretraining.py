@@ -134,6 +134,10 @@ class _TiedCopies(nn.Module):
     def right_inverse(self, tensor: Tensor) -> Tensor:
         return tensor.chunk(self.copies, dim=self.dim)[0]
 
+    def pull_back(self, statistic: Tensor) -> Tensor:
+        """The adjoint of ``forward``: a statistic of the copies summed into one of the free tensor."""
+        return torch.stack(statistic.chunk(self.copies, dim=self.dim)).sum(0)
+
 
 def _tie(stage: EnergyModel, visible_copies: int, hidden_copies: int) -> None:
     """Make ``stage``'s layers ``copies`` tied copies of one layer (weights and biases shared)."""
