@@ -204,3 +204,31 @@ def test_a_refused_step_moves_nothing_and_the_fast_weights_only_decay(monkeypatc
 def test_bad_fast_weight_arguments(options, fragment):
     with pytest.raises(ValueError, match=fragment):
         el.FastWeightsSampler(el.rbm(4, 2), **options)
+
+
+def test_checkpoints_with_the_old_buffer_names_load():
+    # Before the buffers were keyed by parameter, they were fast_bias_<i> / fast_weight_<k> (and
+    # last_...), a lateral coupling's holding its full symmetric weight. Such a state dict, built
+    # here from a sampler's own, loads into the same values (common practice, no source).
+    g = torch.Generator().manual_seed(0)
+    model = el.EnergyModel(
+        [el.BinaryLayer(5), el.BinaryLayer(3)], [el.DenseCoupling(0, 1, 5, 3), el.LateralCoupling(0, 5)]
+    )
+    model.reset_parameters(g)
+    sampler = el.FastWeightsSampler(model, num_particles=4, generator=g)
+    names = [name for name, _ in model.named_parameters()]
+    expected = {}
+    old = dict(sampler.state_dict())
+    for j, name in enumerate(names):
+        part, index, *_ = name.split(".")
+        for kind in ("fast", "last"):
+            value = torch.randn(old.pop(f"{kind}_{j}").shape, generator=g)
+            lateral = "parametrizations" in name  # only its strict upper triangle is used
+            expected[f"{kind}_{j}"] = value.triu(1) if lateral else value
+            old_value = value.triu(1) + value.triu(1).T if lateral else value
+            old[f"{kind}_{'bias' if part == 'layers' else 'weight'}_{index}"] = old_value
+    assert "fast_0" not in old and "fast_bias_0" in old and "last_weight_1" in old  # only old names
+    fresh = el.FastWeightsSampler(model, num_particles=4, generator=torch.Generator().manual_seed(9))
+    fresh.load_state_dict(old)
+    for key, value in expected.items():
+        torch.testing.assert_close(fresh.state_dict()[key], value)
