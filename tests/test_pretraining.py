@@ -81,7 +81,8 @@ def test_each_rbm_learns_from_the_marginals_of_the_one_below():
 
 
 @pytest.fixture(scope="module")
-def digits() -> torch.Tensor:
+def first_digits() -> torch.Tensor:
+    """The first 600 binarised digits (the conftest fixture ``digits`` is the train/test split)."""
     x, _ = binarised_digits()
     return torch.from_numpy(x[:600])
 
@@ -94,20 +95,21 @@ def units_in_use(model: el.EnergyModel, data: torch.Tensor) -> list[float]:
 
 
 @pytest.mark.slow
-def test_pretraining_leaves_every_layer_in_use(digits):
+def test_pretraining_leaves_every_layer_in_use(first_digits):
     def trained(**options) -> el.EnergyModel:
         g = torch.Generator().manual_seed(0)
         model = el.dbm(64, 40, 20, generator=g)
-        el.fit(model, digits, progress=False, generator=g, **options)
+        el.fit(model, first_digits, progress=False, generator=g, **options)
         return model
 
     # Measured: 0.82 and 1.0 of the units vary (marginal std > 0.1 across examples).
-    used = units_in_use(trained(epochs=0, pretrain_epochs=10), digits)
+    used = units_in_use(trained(epochs=0, pretrain_epochs=10), first_digits)
     assert min(used) >= 0.75, used
     # Negative controls: the small initial weights leave every marginal near constant, and as many
     # passes of joint training from them leave the top layer unused (measured: 0.0).
-    assert max(units_in_use(el.dbm(64, 40, 20, generator=torch.Generator().manual_seed(0)), digits)) == 0
-    naive = units_in_use(trained(epochs=10, pretrain_epochs=0), digits)
+    untrained = el.dbm(64, 40, 20, generator=torch.Generator().manual_seed(0))
+    assert max(units_in_use(untrained, first_digits)) == 0
+    naive = units_in_use(trained(epochs=10, pretrain_epochs=0), first_digits)
     assert naive[-1] < 0.75, naive
 
 
@@ -220,7 +222,7 @@ def test_bad_pretraining_arguments_change_nothing(case):
 
 
 @pytest.mark.slow
-def test_pretrained_features_beat_raw_pixels():
+def test_pretrained_features_beat_raw_pixels(digits):
     # A CI-sized version of benchmarks/digits_features.py: one chain trained by fit's defaults on the
     # training images of its first split (no labels), except 10 joint epochs instead of 100 after
     # the default pretraining, then 5-fold cross-validated logistic regression
@@ -228,13 +230,13 @@ def test_pretrained_features_beat_raw_pixels():
     # features against the raw pixels. Cross-validating over every image measures the features with
     # less noise than one split's 540 test images, whose accuracy moves by a point with rounding.
     from sklearn.linear_model import LogisticRegression
-    from sklearn.model_selection import StratifiedKFold, cross_val_score, train_test_split
+    from sklearn.model_selection import StratifiedKFold, cross_val_score
 
     x, y = binarised_digits()
-    train = train_test_split(x, test_size=0.3, random_state=0, stratify=y)[0]
+    train, _ = digits
     g = torch.Generator().manual_seed(0)
     model = el.dbm(64, 100, 50, generator=g)
-    el.fit(model, torch.from_numpy(train), epochs=10, progress=False, generator=g)
+    el.fit(model, train, epochs=10, progress=False, generator=g)
     with torch.no_grad():
         features = el.FeatureExtractor(model)(torch.from_numpy(x)).numpy()
     folds = StratifiedKFold(5, shuffle=True, random_state=0)

@@ -642,7 +642,6 @@ class Evaluation:
         return "\n".join(lines)
 
 
-@torch.no_grad()
 def _report_log_z(
     model: EnergyModel,
     data: Tensor,
@@ -665,6 +664,7 @@ def _report_log_z(
     return estimate, "forward AIS", estimate
 
 
+@torch.no_grad()
 def evaluate(
     model: EnergyModel,
     data: Tensor,

@@ -180,9 +180,11 @@ class EnergyModel(nn.Module):
         ``weights`` ``(B,)`` (summing to one) when given. Not checked: the phases call it."""
         out = Statistics()
         for i, (prefix, layer) in enumerate(self._layer_prefixes):
-            _collect(out, prefix, layer, layer.statistics(states[i], weights))
+            for name, value in _pulled_back(layer, layer.statistics(states[i], weights)):
+                out[prefix + name] = value
         for prefix, coupling, (a, b) in self._coupling_prefixes:
-            _collect(out, prefix, coupling, coupling.statistics(states[a], states[b], weights))
+            for name, value in _pulled_back(coupling, coupling.statistics(states[a], states[b], weights)):
+                out[prefix + name] = value
         return out
 
     def layer_input(
@@ -398,29 +400,23 @@ class EnergyModel(nn.Module):
         return f"sizes={list(self.sizes)}, edges={list(self.edges)}"
 
 
-def _collect(out: Statistics, prefix: str, module: nn.Module, statistics: Mapping[str, Tensor]) -> None:
-    """Put a module's statistics into ``out`` under ``prefix`` + its parameter names."""
-    if "parametrizations" not in module._modules:  # parametrize.is_parametrized(module), looked up directly
-        for name, value in statistics.items():
-            out[prefix + name] = value
-        return
-    for name, value in _pulled_back(module, statistics):
-        out[prefix + name] = value
-
-
 def _pulled_back(module: nn.Module, statistics: Mapping[str, Tensor]) -> Iterable[tuple[str, Tensor]]:
     """A module's statistics keyed by its parameters: a statistic of a tensor that another module
     computes from a free tensor (``torch.nn.utils.parametrize``, such as tied copies of a bias) is
-    pulled back to that free tensor by the chain rule: by autograd, or by the parametrization's
-    own ``pull_back(statistic)`` when it is linear and has one (cheaper on every step)."""
+    pulled back to that free tensor by the chain rule: by autograd, or by the parametrizations'
+    own ``pull_back(statistic)`` (the adjoint of a linear one) when each of them has one."""
+    if "parametrizations" not in module._modules:  # parametrize.is_parametrized(module), looked up directly
+        return statistics.items()
     out = []
     for name, value in statistics.items():
         if name in module._parameters or not parametrize.is_parametrized(module, name):
             out.append((name, value))
             continue
         chain = module.parametrizations[name]  # the parametrizations applied in turn to .original
-        if len(chain) == 1 and hasattr(chain[0], "pull_back"):  # a linear one that knows its adjoint
-            pulled = chain[0].pull_back(value)
+        if all(hasattr(parametrization, "pull_back") for parametrization in chain):
+            pulled = value
+            for parametrization in reversed(chain):  # the adjoint of a composition, last map first
+                pulled = parametrization.pull_back(pulled)
         else:
             free = chain.original.detach().requires_grad_()
             with torch.enable_grad():

@@ -83,22 +83,23 @@ class ReplicaExchangeSampler(PersistentSampler):
         self.register_buffer("swap_attempts", torch.zeros(num_replicas - 1, dtype=torch.float64))
         self.register_buffer("swap_accepts", torch.zeros(num_replicas - 1, dtype=torch.float64))
         self.register_buffer("sweeps_done", torch.zeros((), dtype=torch.int64))
-        hot = (num_replicas - 1) * self.num_particles
-        register_buffer_family(self, "hot", [torch.empty(hot, n, dtype=model.dtype) for n in model.sizes])
-        self._draw_hot()
+        register_buffer_family(self, "hot", self._fresh_hot())
 
     @torch.no_grad()
     def reset(self) -> None:
         """Draw fresh particles from ``init``, and fresh uniform hotter replicas."""
         super().reset()
         if hasattr(self, "hot_0"):  # not yet during PersistentSampler.__init__
-            self._draw_hot()
+            set_buffer_family(self, "hot", self._fresh_hot())
 
-    def _draw_hot(self) -> None:
-        count = (self.num_replicas - 1) * self.num_particles
-        set_buffer_family(
-            self, "hot", [layer.initial_states(count, self.generator) for layer in self.model.layers]
-        )
+    def _fresh_hot(self) -> list[Tensor]:
+        """New states of the hotter replicas, one ``(rows, n_i)`` per layer, from the layers' own draws."""
+        return [layer.initial_states(self._hot_rows, self.generator) for layer in self.model.layers]
+
+    @property
+    def _hot_rows(self) -> int:
+        """Rows of the hotter replicas, stacked above the model's particles."""
+        return (self.num_replicas - 1) * self.num_particles
 
     @property
     def num_replicas(self) -> int:
@@ -112,9 +113,8 @@ class ReplicaExchangeSampler(PersistentSampler):
     @torch.no_grad()
     def _advance(self, sweeps: int, keep_probabilities: bool = False) -> dict[int, Tensor]:
         model, count = self.model, self.num_particles
-        layers = range(len(model.sizes))
         hot = buffer_family(self, "hot", len(model.sizes))
-        states = [torch.cat([hot[i], self.particles[i]]).to(model.dtype) for i in layers]
+        states = [torch.cat([h, x]).to(model.dtype) for h, x in zip(hot, self.particles)]
         # E_beta = beta * E + (1 - beta) * E_base: the couplings' inputs scaled by beta, the layers'
         # parameters interpolated towards the base model's; one sweep per replica.
         base = self._base_parameters()
@@ -130,9 +130,9 @@ class ReplicaExchangeSampler(PersistentSampler):
                 for x, new in zip(states, rows):
                     x[k * count : (k + 1) * count] = new
             self._swap(states)
-        hot = (self.num_replicas - 1) * count
-        set_buffer_family(self, "hot", [x[:hot] for x in states])
-        self._set_particles([x[hot:] for x in states])
+        rows = self._hot_rows
+        set_buffer_family(self, "hot", [x[:rows] for x in states])
+        self._set_particles([x[rows:] for x in states])
         if not keep_probabilities:
             return {}
         # After the swaps the beta = 1 replica is a draw of the model: its last class's conditional

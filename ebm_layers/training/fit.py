@@ -439,8 +439,10 @@ def _train_epoch(run: _Run, result: FitResult, runner, epoch: int, step: int, ba
             seen_rows += len(v)
         bar.update()
         bar.set_postfix(gap=f"{gaps[-1]:.4f}", refresh=False)
-        state = FitState("batch", epoch, step, objective, optimizer, result.scheduler, result.history)
-        if run.callbacks and _run(run.callbacks, state):
+        if run.callbacks and _run(
+            run.callbacks,
+            FitState("batch", epoch, step, objective, optimizer, result.scheduler, result.history),
+        ):
             return step, None
     objective.check_parameters()
     return step, {

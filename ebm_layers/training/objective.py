@@ -275,8 +275,8 @@ class TwoPhaseObjective(nn.Module):
             return coefficients, running
         coefficients = Statistics(coefficients)
         deviation = {}
-        for i in layers[1:]:
-            buffer = buffer_family(self, "sparsity_mean", 1, start=i)[0]
+        means = buffer_family(self, "sparsity_mean", len(layers) - 1, start=1)
+        for i, buffer in zip(layers[1:], means):
             mean = self.sparsity_decay * buffer + (1.0 - self.sparsity_decay) * data[f"layers.{i}.bias"]
             running.append((buffer, mean))
             deviation[i] = self.sparsity_cost * (mean - self.sparsity_target)
