@@ -124,7 +124,8 @@ def main() -> None:
         model = el.dbm(*sizes, generator=g)
         pretrain_epochs = args.pretrain_epochs if len(sizes) > 2 else None  # an RBM is not pretrained
         el.fit(model, train, epochs=args.epochs, pretrain_epochs=pretrain_epochs, progress=False, generator=g)
-        print(f"\nmodel {list(sizes)} trained {args.epochs} epochs with fit's defaults")
+        pretraining = "" if pretrain_epochs is None else f" after {pretrain_epochs} pretraining epochs/RBM"
+        print(f"\nmodel {list(sizes)} trained {args.epochs} epochs{pretraining}, else with fit's defaults")
         seconds = compare_schedules(model, train, args.betas, args.repeats)
         if seconds:
             print(f"default settings (linear, 10,000 betas, 100 chains): {seconds:.1f} s")
