@@ -35,8 +35,10 @@ from .evaluation.partition import (
     reverse_ais_log_likelihood,
 )
 from .features import ConcatenatedLayers, FeatureExtractor, feedforward_network
+from .model.categorical import CategoricalLayer
 from .model.couplings import Coupling, DenseCoupling, LateralCoupling
 from .model.energy_model import EnergyModel, dbm, rbm
+from .model.gaussian import GaussianLayer
 from .model.graph import UpdateSchedule
 from .model.statistics import Statistics
 from .model.units import BinaryLayer, UnitLayer
@@ -54,6 +56,7 @@ from .viz import image_grid, save_image_grid, save_training_plot
 
 __all__ = [
     "BinaryLayer",
+    "CategoricalLayer",
     "ConcatenatedLayers",
     "ContrastiveDivergence",
     "Coupling",
@@ -67,6 +70,7 @@ __all__ = [
     "FeatureExtractor",
     "FitResult",
     "FitState",
+    "GaussianLayer",
     "LateralCoupling",
     "LogLikelihood",
     "MeanField",

@@ -293,7 +293,7 @@ def test_constant_units_are_clipped_with_a_warning():
     model = randomize(build("rbm", (4, 2)), seed=16, scale=1.0)
     data = binary((20, 4), seed=17)
     data[:, 0] = 0.0
-    with pytest.warns(UserWarning, match="1 visible units have base rates outside"):
+    with pytest.warns(UserWarning, match="1 of 4 units have base rates outside"):
         estimate = ais_log_partition(
             model, num_chains=10, num_betas=10, data=data, generator=seeded(18), progress=False
         )

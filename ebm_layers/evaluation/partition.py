@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import math
-import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
@@ -12,7 +11,7 @@ from torch import Tensor
 from torch.autograd.function import once_differentiable
 from tqdm.auto import tqdm
 
-from .._checks import check_batch, check_model, check_size
+from .._checks import check_model, check_size
 from .._random import resolve_generator
 from ..model import functional as F
 from ..model.energy_model import EnergyModel
@@ -81,9 +80,6 @@ def exact_log_partition(model: EnergyModel, *, max_states: int = MAX_STATES) -> 
 # A bracket of log(mean weight +- BRACKET_WIDTH standard errors): the usual three standard errors
 # (common practice, no source).
 BRACKET_WIDTH = 3.0
-# Base rates of the data are clipped to [RATE_CLIP, 1 - RATE_CLIP]: a unit constant in the data
-# would otherwise get an infinite base bias.
-RATE_CLIP = 1e-3
 
 
 @dataclass
@@ -314,47 +310,27 @@ def can_reverse_anneal(model: EnergyModel) -> bool:
 
 
 def _summed_class(model: EnergyModel) -> tuple[int, ...]:
-    """The colour class summed out along the path: the first without layer 0 and without lateral
-    couplings (the hidden layer of an RBM, the odd layers of a chain); else any class without
-    lateral couplings; else none."""
+    """The colour class summed out along the path: the first without observed layers and without
+    lateral couplings (the hidden layer of an RBM, the odd layers of a chain); else any class
+    without lateral couplings; else none."""
     classes = [c for c in model.schedule.classes if not set(c) & model.schedule.unitwise]
-    hidden = [c for c in classes if 0 not in c]
+    hidden = [c for c in classes if not set(c) & set(model.observed)]
     return (hidden or classes or [()])[0]
 
 
-def _base_parameters(model: EnergyModel, data: Tensor | None, base: str | None) -> dict[str, Tensor]:
-    """The base model's layer parameters, keyed like ``model.named_parameters()``: zero, and with
-    ``base="data"`` the visible bias at the log-odds of the data's base rates (binary visible units)."""
-    parameters = {
-        name: torch.zeros_like(p.detach())
-        for name, p in model.named_parameters()
-        if name.startswith("layers.")
-    }
+def _base_parameters(model: EnergyModel, data: object, base: str | None) -> dict[str, Tensor]:
+    """The base model's layer parameters, keyed like ``model.named_parameters()``: each layer's own
+    base (:meth:`EnergyModel.base_parameters`: zero biases), and with ``base="data"`` the observed
+    layers fitted to ``data`` (binary units: the log-odds of the base rates)."""
     if base is None:
         base = "uniform" if data is None else "data"
     if base == "uniform":
-        return parameters
+        return model.base_parameters()
     if base != "data":
         raise ValueError(f"base must be 'data' or 'uniform', got {base!r}")
     if data is None:
         raise ValueError("base='data' needs data= (training data for the base rates); or pass base='uniform'")
-    if "layers.0.bias" not in parameters or model.supports[0] != (0.0, 1.0):
-        raise ValueError(
-            "base='data' sets a binary visible layer's bias from the data's base rates; layer 0 is a "
-            f"{type(model.layers[0]).__name__}: use base='uniform'"
-        )
-    data = check_batch("data", data, model.sizes[0])
-    rates = F.base_rates(data)
-    clipped = rates.clamp(RATE_CLIP, 1.0 - RATE_CLIP)
-    outside = int((clipped != rates).sum())
-    if outside:
-        warnings.warn(
-            f"{outside} visible units have base rates outside [{RATE_CLIP}, {1 - RATE_CLIP}] in data "
-            "(constant units); clipped for the base model",
-            stacklevel=5,  # the caller of ais_log_partition (behind _annealing and the no_grad wrapper)
-        )
-    parameters["layers.0.bias"] = torch.logit(clipped).to(model.dtype)
-    return parameters
+    return model.base_parameters(model.clamped(model.checked("data", data, convert=True)))
 
 
 def _check_schedule(schedule, num_betas: int) -> Tensor:
@@ -404,7 +380,9 @@ def ais_log_partition(
         model: the :class:`EnergyModel`.
         num_chains: number of annealing runs (importance weights).
         num_betas: number of intermediate distributions, both ends included (linear spacing).
-        data: ``(N, n_0)`` training data for the base rates (``base="data"``).
+        data: ``(N, n_0)`` training data (an observation) for the base model's observed layers
+            (``base="data"``: binary units at the base rates, Gaussian units at the data's mean,
+            categorical ones at its frequencies).
         base: ``"data"`` or ``"uniform"``; default ``"data"`` when ``data`` is given, else
             ``"uniform"`` (an AIS without data works, usually with a wider bracket).
         schedule: ``"linear"`` (default), ``"piecewise"`` (see :func:`annealing_schedule`), or an
@@ -489,7 +467,7 @@ def reverse_ais_log_likelihood(
 
     Args:
         model: the :class:`EnergyModel`.
-        v: ``(B, n_0)`` binary examples.
+        v: ``(B, n_0)`` examples (an observation, see :class:`EnergyModel`).
         num_chains: reverse chains per example (their weights are averaged).
         num_betas, data, base, schedule, generator, progress: as in :func:`ais_log_partition`.
 
@@ -505,10 +483,16 @@ def reverse_ais_log_likelihood(
             f"got classes {model.schedule.classes} and lateral layers {sorted(model.schedule.unitwise)}"
         )
     betas, path, generator = _annealing(model, data, base, schedule, num_betas, generator)
+    if set(path.summed) & set(model.observed):
+        raise ValueError(
+            f"reverse annealing keeps the observed layers {list(model.observed)}, but every colour "
+            f"class without lateral couplings holds one of them (classes {model.schedule.classes})"
+        )
     states: list[Tensor | None] = [None] * len(model.sizes)
-    states[0] = v.detach().repeat_interleave(num_chains, 0)
-    log_weights = torch.zeros(states[0].shape[0], dtype=torch.float64)
-    started = [i for i in path.kept if i != 0]
+    for i, x in model.clamped(v.detach()).items():
+        states[i] = x.repeat_interleave(num_chains, 0)
+    log_weights = torch.zeros(v.shape[0] * num_chains, dtype=torch.float64)
+    started = [i for i in path.kept if i not in model.observed]
     if started:
         log_weights -= _start_from_mean_field(model, v, started, states, num_chains, generator)
     terms = path.terms(states)

@@ -1,4 +1,4 @@
-"""EnergyModel: binary layers joined by couplings into any layered graph; builders rbm() and dbm()."""
+"""EnergyModel: unit layers joined by couplings into any layered graph; builders rbm() and dbm()."""
 
 from __future__ import annotations
 
@@ -21,18 +21,27 @@ __all__ = ["EnergyModel", "dbm", "rbm"]
 
 
 class EnergyModel(nn.Module):
-    r"""A Boltzmann machine over binary layers.
+    r"""A Boltzmann machine over unit layers.
 
-    Energy :math:`E(x) = -\sum_l b_l \cdot x_l - \sum_{(a,b)} x_a W_{ab} x_b^\top` over the
-    couplings (a lateral coupling contributes :math:`-\tfrac12 x_a W x_a^\top`).
+    Energy :math:`E(x) = \sum_l U_l(x_l) + \sum_c C_c(x_a, x_b)`: one term per unit layer (binary
+    units: :math:`-b_l \cdot x_l`) and one per coupling (dense: :math:`-x_a W_{ab} x_b^\top`; lateral:
+    :math:`-\tfrac12 x_a W x_a^\top`).
 
-    Layer 0 is the visible layer. Any graph is allowed: chains, skip-layer couplings, lateral
-    couplings within a layer, or a single visible layer with lateral couplings (a pairwise
-    model of binary data).
+    The ``observed`` layers (default: layer 0, the visible layer) are the ones data gives; the
+    others are hidden. Any graph is allowed: chains, skip-layer couplings, lateral couplings within
+    a layer, a single visible layer with lateral couplings (a pairwise model), or several observed
+    layers (an image layer and a label layer joined to one hidden layer).
+
+    An *observation* (what ``fit``, the phases, free energies and likelihoods take as ``v``) is one
+    ``(B, n_i)`` tensor per observed layer: a tuple in the order of ``observed``, a dict
+    ``{layer: tensor}``, or their concatenation ``(B, sum n_i)`` along the units (the form the
+    library works with inside, see :meth:`checked` and :meth:`clamped`); a single observed layer
+    may be given as its tensor alone.
 
     Args:
-        layers: the ``BinaryLayer`` modules, layer 0 first.
-        couplings: ``DenseCoupling`` / ``LateralCoupling`` modules, at most one per pair of layers.
+        layers: the :class:`UnitLayer` modules, layer 0 first.
+        couplings: :class:`Coupling` modules, at most one per pair of layers.
+        observed: indices of the observed layers (default ``(0,)``).
 
     Shape:
         - ``states``: a list with one ``(B, n_i)`` tensor per layer, values in [0, 1].
@@ -53,9 +62,17 @@ class EnergyModel(nn.Module):
         torch.Size([2])
     """
 
-    def __init__(self, layers: Sequence[BinaryLayer], couplings: Sequence[nn.Module] = ()) -> None:
+    def __init__(
+        self, layers: Sequence[UnitLayer], couplings: Sequence[nn.Module] = (), *, observed: Sequence[int] = (0,)
+    ) -> None:
         super().__init__()
         layers, couplings = _check_modules(layers, couplings)
+        self.observed: tuple[int, ...] = _check_observed(observed, len(layers))
+        # Where each observed layer sits in a joined observation (B, sum n_i).
+        bounds = [0]
+        for i in self.observed:
+            bounds.append(bounds[-1] + layers[i].size)
+        self._observed_columns = tuple(zip(self.observed, bounds[:-1], bounds[1:]))
         self.layers = nn.ModuleList(layers)
         self.couplings = nn.ModuleList(couplings)
         self.edges: tuple[tuple[int, int], ...] = tuple((c.a, c.b) for c in couplings)
@@ -100,17 +117,86 @@ class EnergyModel(nn.Module):
         parameter = next(self.parameters(), None)
         return torch.get_default_dtype() if parameter is None else parameter.dtype
 
+    @property
+    def observed_size(self) -> int:
+        """Number of units of the observed layers together (the width of a joined observation)."""
+        return self._observed_columns[-1][2]
+
     def checked(
-        self, name: str, x: object, layer: int = 0, *, batch: int | None = None, convert: bool = False
+        self,
+        name: str,
+        x: object,
+        layer: int | None = None,
+        *,
+        batch: int | None = None,
+        convert: bool = False,
     ) -> Tensor:
         """``x`` checked as a ``(B, n_layer)`` batch of the layer's states: the model's dtype, within
-        the layer's ``support`` (and ``batch`` rows when given); bool or integer data is cast. With
+        the layer's ``support`` (and ``batch`` rows when given); bool or integer data is cast, data in
+        the layer's own encoding converted (``UnitLayer.as_states``: class labels). With
         ``convert``, numpy arrays and floating data of another precision are cast too (the
-        conveniences: ``fit``, ``pretrain``, ``evaluate``). Raises naming ``name``."""
-        size, support = self.sizes[layer], self.layers[layer].support
-        if convert:
-            return check_data(name, x, size, dtype=self.dtype, batch=batch, support=support)
-        return check_batch(name, x, size, dtype=self.dtype, batch=batch, support=support)
+        conveniences: ``fit``, ``pretrain``, ``evaluate``). Raises naming ``name``.
+
+        Without ``layer``: ``x`` is an observation (see the class), returned joined ``(B, sum n_i)``
+        over the observed layers (for one observed layer, that layer's tensor)."""
+        if layer is not None:
+            return self._checked_layer(name, x, layer, batch, convert)
+        parts = self._observation_parts(name, x)
+        checked = []
+        for (part_name, part), i in zip(parts, self.observed):
+            checked.append(self._checked_layer(part_name, part, i, batch, convert))
+            batch = checked[-1].shape[0]
+        return checked[0] if len(checked) == 1 else torch.cat(checked, dim=1)
+
+    def _checked_layer(self, name: str, x: object, layer: int, batch: int | None, convert: bool) -> Tensor:
+        unit = self.layers[layer]
+        if convert and not isinstance(x, Tensor) and hasattr(x, "__array__"):
+            x = torch.as_tensor(x)
+        if isinstance(x, Tensor):
+            x = unit.as_states(x)
+        check = check_data if convert else check_batch
+        x = check(name, x, unit.size, dtype=self.dtype, batch=batch, support=unit.support)
+        unit.check_states(name, x)
+        return x
+
+    def _observation_parts(self, name: str, x: object) -> list[tuple[str, object]]:
+        """An observation split into ``(name, data)`` per observed layer, not yet checked."""
+        observed = self.observed
+        if isinstance(x, Mapping):
+            if set(x.keys()) != set(observed):
+                raise ValueError(
+                    f"{name} must map every observed layer {list(observed)} to its data, got keys {sorted(x)}"
+                )
+            return [(f"{name}[{i}]", x[i]) for i in observed]
+        parts = isinstance(x, (tuple, list)) and all(isinstance(p, Tensor) or hasattr(p, "__array__") for p in x)
+        if parts and (x or len(observed) > 1):
+            if len(x) != len(observed):
+                raise ValueError(
+                    f"{name} must hold one tensor per observed layer {list(observed)}, got {len(x)}"
+                )
+            return [(f"{name}[{k}]", part) for k, part in enumerate(x)]
+        if len(observed) == 1:
+            return [(name, x)]
+        if not isinstance(x, Tensor) and hasattr(x, "__array__"):
+            x = torch.as_tensor(x)
+        if not isinstance(x, Tensor):
+            raise TypeError(
+                f"{name} must be a tuple of tensors (one per observed layer {list(observed)}), a dict or "
+                f"a joined tensor, got {type(x).__name__}"
+            )
+        if x.ndim != 2 or x.shape[1] != self.observed_size:
+            raise ValueError(
+                f"{name} joined over the observed layers {list(observed)} must have shape "
+                f"(batch, {self.observed_size}), got {tuple(x.shape)}; or pass one tensor per layer"
+            )
+        return [(f"{name}[:, {start}:{stop}]", x[:, start:stop]) for _, start, stop in self._observed_columns]
+
+    def clamped(self, v: Tensor) -> dict[int, Tensor]:
+        """A joined observation ``(B, sum n_i)`` (as :meth:`checked` returns it) split into
+        ``{observed layer: (B, n_i) view}``."""
+        if len(self.observed) == 1:
+            return {self.observed[0]: v}
+        return {i: v[:, start:stop] for i, start, stop in self._observed_columns}
 
     @property
     def supports(self) -> tuple[tuple[float, float] | None, ...]:
@@ -147,12 +233,13 @@ class EnergyModel(nn.Module):
         values = [w.detach().float().double() for c in self.couplings for w in c.parameters()]
         return tuple((float(w.sum()), float(w.square().sum())) for w in values)
 
-    def forward(self, x: Tensor | Sequence[Tensor]) -> Tensor:
-        """``model(v)``: the free energy ``F(v)`` ``(B,)`` of visible data ``(B, n_0)``, the usual
-        output of an energy-based model (lower for data the model finds more probable; ``-F(v)``
-        is ``log p(v)`` up to ``log Z``), differentiable; as :meth:`free_energy`, only where it has
-        a closed form. ``model([x_0, ..., x_L])``: the energy of joint states, as :meth:`energy`."""
-        if isinstance(x, Tensor):
+    def forward(self, x: Tensor | Sequence[Tensor] | Mapping[int, Tensor]) -> Tensor:
+        """``model(v)``: the free energy ``F(v)`` ``(B,)`` of an observation (visible data ``(B, n_0)``
+        for one observed layer), the usual output of an energy-based model (lower for data the model
+        finds more probable; ``-F(v)`` is ``log p(v)`` up to ``log Z``), differentiable; as
+        :meth:`free_energy`, only where it has a closed form. ``model([x_0, ..., x_L])`` (one tensor
+        per layer): the energy of joint states, as :meth:`energy`."""
+        if isinstance(x, (Tensor, Mapping)) or len(x) != len(self.layers):
             return self.free_energy(x)
         return self.energy(x)
 
@@ -302,17 +389,19 @@ class EnergyModel(nn.Module):
 
     @property
     def has_free_energy(self) -> bool:
-        """Whether :meth:`free_energy` exists in closed form (no two non-visible units coupled)."""
-        return first_coupled_pair(self.edges, {0}) is None
+        """Whether :meth:`free_energy` exists in closed form (no two hidden units coupled)."""
+        return first_coupled_pair(self.edges, set(self.observed)) is None
 
     def free_energy(self, v: Tensor, *, dtype: torch.dtype | None = None) -> Tensor:
-        r"""Free energy ``(B,)`` of visible data, :math:`F(v) = -\log \sum_h e^{-E(v, h)}`.
+        r"""Free energy ``(B,)`` of an observation, :math:`F(v) = -\log \sum_h e^{-E(v, h)}`
+        (``v``: visible data ``(B, n_0)``, or one tensor per observed layer, see the class).
 
-        Defined in closed form only when no two non-visible units are coupled (RBM-like
-        models, with or without visible lateral couplings); otherwise a ``ValueError``.
-        ``dtype`` computes in another precision (parameters and ``v`` cast, still differentiable).
+        Defined in closed form only when no two hidden units are coupled (RBM-like models, with or
+        without visible lateral couplings); otherwise a ``ValueError``. ``dtype`` computes in
+        another precision (parameters and ``v`` cast, still differentiable).
         """
-        return self._checked_free_energy({0: v}, {0: "v"}, dtype)
+        self.check_summable(self.observed)
+        return self._free_energy_in(self.clamped(self.checked("v", v)), dtype)
 
     def marginal_free_energy(self, states: Mapping[int, Tensor]) -> Tensor:
         """Free energy ``(B,)`` of some layers' states, every other layer summed out in closed form.
@@ -335,7 +424,10 @@ class EnergyModel(nn.Module):
         for i, x in states.items():
             checked[i] = self.checked(names[i], x, i, batch=batch)
             batch = x.shape[0]
-        states = checked
+        return self._free_energy_in(checked, dtype)
+
+    def _free_energy_in(self, states: Mapping[int, Tensor], dtype: torch.dtype | None) -> Tensor:
+        """:meth:`summed_free_energy` of checked ``states``, in ``dtype`` when given."""
         if dtype is None or dtype == self.dtype:
             return self.summed_free_energy(states)
         # Another precision: the modules and states cast (the cast is differentiable).
@@ -372,32 +464,61 @@ class EnergyModel(nn.Module):
             )
 
     @torch.no_grad()
-    def init_visible_bias_from(self, data: Tensor, pseudocount: float = 1.0) -> None:
-        """Set the visible biases to the log-odds of the smoothed base rates of ``data`` ``(B, n_0)``.
+    def base_parameters(self, data: Mapping[int, Tensor] | None = None) -> dict[str, Tensor]:
+        """The parameters of the base model of independent units that annealing and tempering start
+        from, keyed like ``named_parameters()``: each layer's :meth:`UnitLayer.base_parameters`, fitted
+        to ``data[i]`` for the layers ``data`` gives. A parametrized tensor (tied copies of a bias) is
+        given through its free tensor (the parametrizations' ``right_inverse``)."""
+        out = {}
+        for i, layer in enumerate(self.layers):
+            for name, value in layer.base_parameters(None if data is None else data.get(i)).items():
+                if name not in layer._parameters and parametrize.is_parametrized(layer, name):
+                    for parametrization in reversed(layer.parametrizations[name]):
+                        value = parametrization.right_inverse(value)
+                    name = f"parametrizations.{name}.original"
+                out[f"layers.{i}.{name}"] = value
+        return out
 
-        Rate ``p_i = (sum_b v_bi + pseudocount) / (B + 2 pseudocount)``, bias ``log(p_i / (1 - p_i))``:
-        common practice, "A Practical Guide to Training Restricted Boltzmann Machines" (Hinton,
-        UTML TR 2010-003, 2010), section 8; the pseudocount keeps constant units finite.
+    @torch.no_grad()
+    def init_visible_bias_from(self, data: object, pseudocount: float = 1.0) -> None:
+        """Set the observed layers' biases from an observation ``data`` (one ``(B, n_i)`` per observed
+        layer, see the class): binary units at the log-odds of the smoothed base rates, other unit
+        types as their :meth:`UnitLayer.base_parameters` give (Gaussian: the data's mean; categorical:
+        the log of the smoothed frequencies).
+
+        Binary rate ``p_i = (sum_b v_bi + pseudocount) / (B + 2 pseudocount)``, bias
+        ``log(p_i / (1 - p_i))``: common practice, "A Practical Guide to Training Restricted
+        Boltzmann Machines" (Hinton, UTML TR 2010-003, 2010), section 8; the pseudocount keeps
+        constant units finite.
         """
-        if not isinstance(self.layers[0], BinaryLayer):
-            raise ValueError(
-                f"base-rate biases are for binary visible units; layer 0 is a {type(self.layers[0]).__name__}"
-            )
+        for i in self.observed:
+            if not isinstance(getattr(self.layers[i], "bias", None), nn.Parameter):
+                raise ValueError(
+                    f"init_visible_bias_from sets observed layers' biases; layer {i} is a "
+                    f"{type(self.layers[i]).__name__} without a bias parameter"
+                )
         data = self.checked("data", data)
         pseudocount = check_positive_real("pseudocount", pseudocount)
-        self.layers[0].bias.copy_(F.base_rate_logits(data, pseudocount))
+        for i, x in self.clamped(data).items():
+            layer = self.layers[i]
+            if isinstance(layer, BinaryLayer):
+                layer.bias.copy_(F.base_rate_logits(x, pseudocount))
+            else:
+                layer.bias.copy_(layer.base_parameters(x)["bias"])
 
     def is_binary_chain(self) -> bool:
-        """Whether the model is what :func:`dbm` builds: binary layers, and unmasked dense couplings
-        ``(k, k + 1)`` in order (greedy pretraining and the feed-forward network need it)."""
+        """Whether the model is what :func:`dbm` builds: binary layers, layer 0 observed alone, and
+        unmasked dense couplings ``(k, k + 1)`` in order (the feed-forward network needs it)."""
         return (
-            is_chain(len(self.layers), self.edges)
+            self.observed == (0,)
+            and is_chain(len(self.layers), self.edges)
             and all(isinstance(layer, BinaryLayer) for layer in self.layers)
             and all(isinstance(c, DenseCoupling) and c.mask is None for c in self.couplings)
         )
 
     def extra_repr(self) -> str:
-        return f"sizes={list(self.sizes)}, edges={list(self.edges)}"
+        observed = "" if self.observed == (0,) else f", observed={list(self.observed)}"
+        return f"sizes={list(self.sizes)}, edges={list(self.edges)}{observed}"
 
 
 def _pulled_back(module: nn.Module, statistics: Mapping[str, Tensor]) -> Iterable[tuple[str, Tensor]]:
@@ -426,6 +547,16 @@ def _pulled_back(module: nn.Module, statistics: Mapping[str, Tensor]) -> Iterabl
                 (pulled,) = torch.autograd.grad(tensor, free, value)
         out.append((f"parametrizations.{name}.original", pulled))
     return out
+
+
+def _check_observed(observed: object, count: int) -> tuple[int, ...]:
+    """Validate the observed layer indices: distinct, in range, at least one; returned sorted."""
+    if isinstance(observed, (str, bytes)) or not isinstance(observed, Iterable):
+        raise TypeError(f"observed must be a sequence of layer indices, got {observed!r}")
+    indices = [check_index("observed layer", i, count) for i in observed]
+    if not indices or len(set(indices)) != len(indices):
+        raise ValueError(f"observed must list one or more distinct layer indices, got {list(observed)}")
+    return tuple(sorted(indices))
 
 
 def _check_modules(layers, couplings):

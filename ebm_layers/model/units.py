@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import warnings
+
 import torch
 from torch import Tensor, nn
 from torch.nn.functional import softplus
@@ -10,7 +12,10 @@ from .._checks import check_size
 from . import functional as F
 from .parameters import autograd_statistics
 
-__all__ = ["BinaryLayer", "UnitLayer"]
+__all__ = ["RATE_CLIP", "BinaryLayer", "UnitLayer"]
+
+# Base rates of binary data are clipped to [RATE_CLIP, 1 - RATE_CLIP] for an annealing base model.
+RATE_CLIP = 1e-3
 
 
 class UnitLayer(nn.Module):
@@ -33,6 +38,12 @@ class UnitLayer(nn.Module):
     (rows ``start..stop`` of the list of every joint state); a layer without them is summed out with
     ``log_partition`` instead. ``support = (low, high)`` bounds the values data and states may take
     (``None``: unbounded). ``statistics`` has a generic default by autograd of ``energy``.
+
+    Optional hooks with defaults: ``as_states(x)`` turns data in the layer's own encoding (class
+    labels) into states; ``check_states(name, x)`` rejects data the support alone does not rule out;
+    ``expected_energy(mean)`` is ``E[U(x)]`` under the factorised distribution with that mean
+    (``energy(mean)`` for units whose term is linear in ``x``); ``base_parameters(data)`` gives the
+    independent base model annealing starts from.
 
     Annealing and tempering interpolate a layer's parameters (``beta * theta + (1 - beta) * theta_0``,
     possibly one row per chain); that follows the energy exactly when ``U`` is linear in the
@@ -61,6 +72,25 @@ class UnitLayer(nn.Module):
         """``{parameter name: batch average of -dU/dtheta}`` over states ``x`` ``(B, n)``; weighted by
         ``weights`` ``(B,)`` (summing to one) when given. Generic: autograd of ``energy``."""
         return autograd_statistics(self, lambda: self.energy(x.detach()), weights)
+
+    def as_states(self, x: Tensor) -> Tensor:
+        """Data in the layer's own encoding as ``(B, n)`` states (default: ``x`` itself)."""
+        return x
+
+    def check_states(self, name: str, x: Tensor) -> None:
+        """Raise ``ValueError`` naming ``name`` if ``x`` ``(B, n)``, within the support, is still not a
+        batch of the layer's states or means (default: every value within the support is)."""
+
+    def expected_energy(self, mean: Tensor) -> Tensor:
+        """``E[U(x)]`` ``(B,)`` under the factorised distribution with this ``mean`` ``(B, n)``:
+        ``energy(mean)``, exact when ``U`` is linear in ``x``; override otherwise."""
+        return self.energy(mean)
+
+    def base_parameters(self, data: Tensor | None = None) -> dict[str, Tensor]:
+        """The parameters ``{name: tensor}`` of the base model of independent units that annealing
+        starts from: every parameter zero (default), or fitted to ``data`` ``(N, n)`` where a layer
+        knows how. Parameters left out keep the model's values along the whole path."""
+        return {name: torch.zeros_like(p.detach()) for name, p in self.named_parameters()}
 
     def log_probability(self, x: Tensor, input: Tensor) -> Tensor:
         """``log p(x | input)`` ``(B,)`` of states ``x`` under the layer's conditional:
@@ -140,6 +170,23 @@ class BinaryLayer(UnitLayer):
     def statistics(self, x: Tensor, weights: Tensor | None = None) -> dict[str, Tensor]:
         """``{"bias": mean of x}`` (weighted when ``weights`` is given)."""
         return {"bias": x.mean(0) if weights is None else weights.to(x.dtype) @ x}
+
+    def base_parameters(self, data: Tensor | None = None) -> dict[str, Tensor]:
+        """Zero bias (every unit on with probability 1/2), or the log-odds of ``data``'s base rates
+        clipped to ``[RATE_CLIP, 1 - RATE_CLIP]`` (a unit constant in the data would otherwise get an
+        infinite bias; a warning says how many were clipped)."""
+        if data is None:
+            return {"bias": torch.zeros_like(self.bias.detach())}
+        rates = F.base_rates(data)
+        clipped = rates.clamp(RATE_CLIP, 1.0 - RATE_CLIP)
+        outside = int((clipped != rates).sum())
+        if outside:
+            warnings.warn(
+                f"{outside} of {self.size} units have base rates outside [{RATE_CLIP}, {1 - RATE_CLIP}] in data "
+                "(constant units); clipped for the base model",
+                stacklevel=2,
+            )
+        return {"bias": torch.logit(clipped).to(self.bias.dtype)}
 
     def initial_states(self, batch: int, generator: torch.Generator, mean: Tensor | None = None) -> Tensor:
         """Every unit on with probability 1/2 whatever the bias, or with probability ``mean``."""

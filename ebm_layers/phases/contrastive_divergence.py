@@ -70,8 +70,12 @@ class ContrastiveDivergence(nn.Module):
         """Run ``steps`` sweeps from the batch ``v`` ``(B, n_0)``; the final states' Statistics."""
         model = self.model
         v = model.checked("v", v)
-        states = [v, *(layer.initial_states(v.shape[0], self.generator) for layer in model.layers[1:])]
-        gibbs_sweep(model, states, self.generator, clamped={0})
+        given = model.clamped(v)
+        states = [
+            given[i] if i in given else layer.initial_states(v.shape[0], self.generator)
+            for i, layer in enumerate(model.layers)
+        ]
+        gibbs_sweep(model, states, self.generator, clamped=given.keys())
         probabilities: dict[int, Tensor] = {}
         for step in range(self.steps):
             last = self.probabilities and step == self.steps - 1

@@ -103,9 +103,10 @@ class PersistentSampler(nn.Module):
         sweeps: sweeps per call of ``sampler()`` / ``statistics()``.
         generator: the ``torch.Generator`` of every draw (``None``: a private one seeded from
             the global RNG). Its state is saved in ``state_dict()`` and restored on load.
-        init: ``"uniform"`` (every unit 1 with probability 1/2), or a ``(P, n_0)`` tensor of
-            visible probabilities in [0, 1] (binary data starts the chains exactly there; the
-            other layers start uniform).
+        init: ``"uniform"`` (each layer drawn by its ``initial_states``: binary units 1 with
+            probability 1/2), or an observation of ``P`` rows (``(P, n_0)`` visible probabilities in
+            [0, 1] for one binary visible layer; binary data starts the chains exactly there; the
+            hidden layers start as with ``"uniform"``).
         probabilities: ``statistics()`` uses, for the last class of the last sweep, the
             conditional probabilities instead of the binary states (Rao-Blackwellised: the same
             expectation, lower variance). Layers with lateral couplings keep binary states.
@@ -146,7 +147,7 @@ class PersistentSampler(nn.Module):
         self.sweeps = check_size("sweeps", sweeps)
         if isinstance(init, str):
             if init != "uniform":
-                raise ValueError(f"init must be 'uniform' or a (num_particles, n_0) tensor, got {init!r}")
+                raise ValueError(f"init must be 'uniform' or a (num_particles, n_0) observation, got {init!r}")
         else:
             init = model.checked("init", init, batch=self.num_particles, convert=True).detach().clone()
         if not isinstance(probabilities, bool):
@@ -171,14 +172,10 @@ class PersistentSampler(nn.Module):
     @torch.no_grad()
     def reset(self) -> None:
         """Draw fresh particles from ``init`` with the sampler's generator."""
-        count, init = self.num_particles, self.init
+        count, model = self.num_particles, self.model
+        given = model.clamped(self.init.to(model.dtype)) if isinstance(self.init, Tensor) else {}
         self._set_particles(
-            [
-                layer.initial_states(count, self.generator, init.to(self.model.dtype))
-                if i == 0 and isinstance(init, Tensor)
-                else layer.initial_states(count, self.generator)
-                for i, layer in enumerate(self.model.layers)
-            ]
+            [layer.initial_states(count, self.generator, given.get(i)) for i, layer in enumerate(model.layers)]
         )
 
     @torch.no_grad()
@@ -255,7 +252,7 @@ class PersistentSampler(nn.Module):
 class DataParticles(nn.Module):
     """Data-specific persistent particles: one hidden configuration per training example.
 
-    Each call clamps the visible layer to a batch of examples, advances those examples' own
+    Each call clamps the observed layers to a batch of examples, advances those examples' own
     hidden states by ``sweeps`` block Gibbs sweeps and stores them back: a positive phase that
     samples the posterior of deep models instead of approximating it by mean field, with chains
     that persist from one visit of an example to the next (useful for full-batch learning on
@@ -269,12 +266,12 @@ class DataParticles(nn.Module):
             the global RNG). Its state is saved in ``state_dict()`` and restored on load.
 
     Shape:
-        - ``statistics(v, index)``: ``v`` ``(B, n_0)``, ``index`` ``(B,)`` integer; returns the
+        - ``statistics(v, index)``: ``v`` ``(B, n_0)`` (an observation), ``index`` ``(B,)`` integer; returns the
           :class:`Statistics` of the clamped batch with its updated hidden states (detached).
           An index repeated within a batch is stored once (the last copy).
 
     Attributes:
-        states_<i>: buffer ``(N, n_i)`` of the hidden states of layer ``i >= 1``, drawn by the
+        states_<i>: buffer ``(N, n_i)`` of the states of hidden layer ``i``, drawn by the
             layer's ``initial_states`` at construction; ``uint8`` for discrete units in {0, 1}.
         generator_state: ``uint8`` buffer, the generator's state when ``state_dict()`` was taken.
 
@@ -300,10 +297,10 @@ class DataParticles(nn.Module):
         self.model = model
         self.generator = resolve_generator(generator)
         track_generator_state(self)
-        hidden = [layer.initial_states(self.num_examples, self.generator) for layer in model.layers[1:]]
-        register_buffer_family(
-            self, "states", [_stored(layer, x) for layer, x in zip(model.layers[1:], hidden)], start=1
-        )
+        self.hidden = [i for i in range(len(model.layers)) if i not in model.observed]
+        for i in self.hidden:
+            layer = model.layers[i]
+            self.register_buffer(f"states_{i}", _stored(layer, layer.initial_states(self.num_examples, self.generator)))
 
     @torch.no_grad()
     def statistics(self, v: Tensor, index: Tensor | None = None) -> Statistics:
@@ -313,12 +310,13 @@ class DataParticles(nn.Module):
         model = self.model
         v = model.checked("v", v)
         index = check_example_index("index", index, self.num_examples, v.shape[0])
-        stored = buffer_family(self, "states", len(model.sizes) - 1, start=1)
-        states = [v, *(x[index].to(model.dtype) for x in stored)]
+        given = model.clamped(v)
+        stored = {i: getattr(self, f"states_{i}") for i in self.hidden}
+        states = [given[i] if i in given else stored[i][index].to(model.dtype) for i in range(len(model.layers))]
         for _ in range(self.sweeps):
-            gibbs_sweep(model, states, self.generator, clamped={0})
-        for buffer, x in zip(stored, states[1:]):
-            buffer[index] = x.to(buffer.dtype)
+            gibbs_sweep(model, states, self.generator, clamped=given.keys())
+        for i, buffer in stored.items():
+            buffer[index] = states[i].to(buffer.dtype)
         return model.statistics(states)
 
     def forward(self, v: Tensor, index: Tensor) -> Statistics:

@@ -15,7 +15,7 @@ from ..model.energy_model import EnergyModel
 from ..model.graph import UpdateSchedule
 from ..model.parameters import substituted
 from ..model.statistics import Statistics
-from ..model.units import UnitLayer
+from ..model.units import BinaryLayer, UnitLayer
 
 __all__ = ["MeanField"]
 
@@ -28,8 +28,9 @@ Marginals = dict[int, Tensor]
 class MeanField(nn.Module):
     r"""Mean-field inference: factorised marginals ``mu`` of the free layers given clamped ones.
 
-    Solves the fixed point ``mu_l = sigmoid(b_l + sum_m mu_m W_ml)`` for every free layer ``l``
-    with layer 0 clamped to the data (and any layers in ``clamp``).
+    Solves the fixed point ``mu_l = mean_l(input_l(mu))`` (binary units:
+    ``sigmoid(b_l + sum_m mu_m W_ml)``) for every free layer ``l`` with the observed layers clamped
+    to the data (and any layers in ``clamp``).
 
     - ``update="colour"`` (default): the colour classes of ``model.schedule`` in turn, each
       from the newest values of its neighbours (layers with lateral couplings unit by unit).
@@ -65,17 +66,21 @@ class MeanField(nn.Module):
         tol: stop when the residual is below this.
         max_iter: most updates (sweeps, for colour) per call.
         backward: ``"implicit"`` or ``"unroll"``.
-        init: value in [0, 1] of every free unit before the first update, or ``"bottom-up"``:
+        init: value in [0, 1] of every free binary unit before the first update (other unit types
+            start at their mean under zero input), or ``"bottom-up"``:
             each free layer from the layers below it, in index order, with the weights from below
             doubled for a layer that has couplings above it (as ``feedforward_network`` does).
 
     Shape:
-        - ``mf(v, clamp, missing)``: ``v`` ``(B, n_0)``; ``clamp`` maps further layer indices to
+        - ``mf(v, clamp, missing)``: ``v`` ``(B, n_0)``, or an observation of several observed
+          layers (see :class:`EnergyModel`); ``clamp`` maps further layer indices to
           ``(B, n_i)``. Returns one ``(B, n_i)`` tensor per layer: the clamped values themselves
           and the marginals of the free layers.
-        - ``missing``: optional bool ``(B, n_0)``, True where ``v`` is unknown. Those units are
-          inferred like free ones (``v`` may hold anything there, NaN included) and layer 0 comes
-          back filled in: observed values, and marginals where missing.
+        - ``missing``: optional bool, shaped like ``v`` (joined over the observed layers), True
+          where ``v`` is unknown. Those units are inferred like free ones (``v`` may hold anything
+          there, NaN included) and their layers come back filled in: observed values, and
+          marginals where missing. Marking a whole observed layer missing predicts it from the
+          others (a label layer from an image, say).
 
     Attributes:
         iterations: updates used by the last call.
@@ -191,8 +196,11 @@ class MeanField(nn.Module):
                 if any(i in e and max(e) > i for e in model.edges):
                     input = 2 * input
                 start = model.layers[i].mean(input).expand(problem.batch, -1)
-            else:
+            elif isinstance(model.layers[i], BinaryLayer):
                 start = torch.full((problem.batch, model.sizes[i]), self.init, dtype=model.dtype)
+            else:
+                zero = torch.zeros(1, model.sizes[i], dtype=model.dtype)
+                start = model.layers[i].mean(zero).expand(problem.batch, -1)
             observed = problem.observed_units(i)
             marginals[i] = start if observed is None else torch.where(*observed, start)
         return marginals
@@ -374,12 +382,23 @@ class MeanField(nn.Module):
                     raise ValueError(
                         f"missing must have the shape of v, {tuple(v.shape)}, got {tuple(missing.shape)}"
                     )
-                v = torch.where(missing, 0.0, v)  # unknown values may be anything, NaN included
+                # Unknown values may be anything, NaN included: each layer's mean under zero input
+                # stands in for them until inferred (it is a valid value of every unit type).
+                with torch.no_grad():
+                    zero = {i: torch.zeros(1, model.sizes[i], dtype=model.dtype) for i in model.observed}
+                    fill = torch.cat([model.layers[i].mean(zero[i]) for i in model.observed], dim=1)
+                v = torch.where(missing, fill.to(v.dtype) if v.is_floating_point() else fill, v)
         v = model.checked("v", v)
-        if missing is not None and bool(missing.any()):
-            clamped, observed = {}, (~missing, v)
-        else:
-            clamped, observed = {0: v}, None
+        clamped, observed = model.clamped(v), {}
+        if missing is not None:
+            if missing.shape != v.shape:
+                raise ValueError(
+                    f"missing must have the shape of v joined over the observed layers, {tuple(v.shape)}, "
+                    f"got {tuple(missing.shape)}"
+                )
+            for i, unknown in model.clamped(missing).items():
+                if bool(unknown.any()):  # a layer with unknown units is inferred, its known ones kept
+                    observed[i] = (~unknown, clamped.pop(i))
         if clamp is not None:
             if not isinstance(clamp, Mapping):
                 raise TypeError(
@@ -387,8 +406,8 @@ class MeanField(nn.Module):
                 )
             for i, x in clamp.items():
                 i = check_index("clamp layer", i, len(model.layers))
-                if i == 0:
-                    raise ValueError("clamp must not contain layer 0: it is clamped to v")
+                if i in model.observed:
+                    raise ValueError(f"clamp must not contain layer {i}: it is observed (given by v)")
                 clamped[i] = model.checked(f"clamp[{i}]", x, i, batch=v.shape[0])
         free = [i for i in range(len(model.layers)) if i not in clamped]
         return _Problem(model, clamped, free, v.shape[0], observed)
@@ -403,22 +422,21 @@ class MeanField(nn.Module):
 
 @dataclass
 class _Problem:
-    """One call's inputs: clamped layers, free layers, partly observed layer 0, and (once reduced)
+    """One call's inputs: clamped layers, free layers, partly observed layers, and (once reduced)
     the constant input the clamped layers send to the free ones."""
 
     model: EnergyModel
     clamped: Marginals
     free: list[int]
     batch: int
-    observed: tuple[Tensor, Tensor] | None = None  # (mask, values) of layer 0 when values are missing
+    observed: dict[int, tuple[Tensor, Tensor]] = field(default_factory=dict)  # (mask, values) where some are missing
     extra: Marginals = field(default_factory=dict)  # input from the clamped layers, once reduced
     skip: tuple[int, ...] = ()  # the layers whose input is in ``extra``
     parameters: dict[str, Tensor] = field(default_factory=dict)  # substituted (detached) parameters
 
     def requires_grad(self) -> bool:
         tensors = [*self.model.parameters(), *self.clamped.values()]
-        if self.observed is not None:
-            tensors.append(self.observed[1])
+        tensors.extend(values for _, values in self.observed.values())
         return any(x.requires_grad for x in tensors)
 
     def classes(self, schedule: UpdateSchedule) -> list[tuple[int, ...]]:
@@ -427,7 +445,7 @@ class _Problem:
         return [c for c in classes if c]
 
     def observed_units(self, layer: int) -> tuple[Tensor, Tensor] | None:
-        return self.observed if layer == 0 else None
+        return self.observed.get(layer)
 
     def reduced(self) -> _Problem:
         """The same problem with what the clamped layers send computed once.
@@ -447,7 +465,7 @@ class _Problem:
 
     def detached(self) -> _Problem:
         """The same problem with every tensor detached (for the adjoint iteration's graph)."""
-        observed = None if self.observed is None else (self.observed[0], self.observed[1].detach())
+        observed = {i: (mask, values.detach()) for i, (mask, values) in self.observed.items()}
         return replace(
             self,
             clamped={i: x.detach() for i, x in self.clamped.items()},

@@ -12,6 +12,7 @@ from .._checks import check_size
 from ..model import functional as F
 from ..model.energy_model import EnergyModel
 from ..model.parameters import substituted
+from ..model.units import BinaryLayer
 from .gibbs import PersistentSampler, gibbs_sweep
 
 __all__ = ["ReplicaExchangeSampler"]
@@ -75,9 +76,13 @@ class ReplicaExchangeSampler(PersistentSampler):
                     f"got {betas.tolist()}"
                 )
         base = torch.zeros(model.sizes[0], dtype=model.dtype)
-        if data is not None:
-            data = model.checked("data", data)
-            base = F.base_rate_logits(data, pseudocount=1.0).to(model.dtype)
+        visible = model.layers[0]
+        if data is not None and 0 in model.observed:
+            data = model.clamped(model.checked("data", data))[0]
+            if isinstance(visible, BinaryLayer):
+                base = F.base_rate_logits(data, pseudocount=1.0).to(model.dtype)
+            else:
+                base = visible.base_parameters(data).get("bias", base)
         self.register_buffer("inverse_temperatures", betas)
         self.register_buffer("base_bias", base)
         self.register_buffer("swap_attempts", torch.zeros(num_replicas - 1, dtype=torch.float64))
@@ -145,9 +150,9 @@ class ReplicaExchangeSampler(PersistentSampler):
         }
 
     def _base_parameters(self) -> dict[str, Tensor]:
-        """The base model's layer parameters: zero, the visible bias at the data's base rates."""
-        named = self.model.named_parameters()
-        base = {name: torch.zeros_like(p.detach()) for name, p in named if name.startswith("layers.")}
+        """The base model's layer parameters (:meth:`EnergyModel.base_parameters`), layer 0's bias
+        at ``base_bias``."""
+        base = self.model.base_parameters()
         visible = self.model.layers[0]
         if parametrize.is_parametrized(visible, "bias"):  # e.g. tied copies: the free tensor behind it
             free = self.base_bias

@@ -13,13 +13,13 @@ import math
 import os
 import time
 import warnings
-from collections.abc import Callable, Iterable, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import torch
 import torch.distributed as dist
-from torch import Tensor
+from torch import Tensor, nn
 from torch.utils.data import DataLoader, DistributedSampler, RandomSampler
 from tqdm.auto import tqdm
 
@@ -27,7 +27,6 @@ from .._checks import check_count, check_model, check_positive_real, check_size
 from .._random import resolve_generator
 from ..evaluation.metrics import free_energy_gap
 from ..model.energy_model import EnergyModel
-from ..model.units import BinaryLayer
 from ..phases.contrastive_divergence import ContrastiveDivergence
 from ..phases.fast_weights import FastWeightsSampler
 from ..phases.gibbs import DataParticles, PersistentSampler
@@ -153,8 +152,10 @@ def fit(
 
     Args:
         model: the :class:`EnergyModel`.
-        data: a ``(N, n_0)`` tensor (shuffled every epoch with ``generator``), or a ``DataLoader``
-            yielding ``(B, n_0)`` tensors or tuples whose first item is the batch (with
+        data: a ``(N, n_0)`` tensor (shuffled every epoch with ``generator``), with several
+            observed layers one tensor per observed layer (a tuple ``(X, Y)`` or a dict, see
+            :class:`EnergyModel`), or a ``DataLoader`` yielding ``(B, n_0)`` tensors (joined
+            observations, or dicts ``{layer: batch}``) or tuples whose first item is the batch (with
             :class:`DataParticles`, tuples ``(v, index)``). For a bit-identical resume, give a
             shuffling loader its own ``generator``: its state is saved in checkpoints.
         objective: a :class:`TwoPhaseObjective` of ``model`` (default: built as above).
@@ -254,7 +255,7 @@ def fit(
             model, data, epochs=pretrain_epochs, batch_size=batch_size, progress=progress, generator=generator
         )
         result.pretraining = [stage.history for stage in stages]
-    elif loader is None and model.untrained() and _zero_binary_visible_bias(model):
+    elif loader is None and model.untrained() and _zero_observed_biases(model):
         model.init_visible_bias_from(data)
     if resume is None and loader is None and objective.centering and objective.offsets_unset:
         objective.init_offsets(data)
@@ -426,6 +427,8 @@ def _train_epoch(run: _Run, result: FitResult, runner, epoch: int, step: int, ba
         if isinstance(sampler, DistributedSampler):
             sampler.set_epoch(epoch)
     for v, index in _batches(run.data, run.loader, run.batch_size, run.shuffling, run.with_index, run.shares):
+        if not isinstance(v, Tensor):  # a loader's dict of observed layers: joined once
+            v = run.model.checked("batch", v, convert=True)
         loss = runner(v, index=index) if run.with_index else runner(v)
         optimizer.zero_grad(set_to_none=True)
         loss.backward()
@@ -498,10 +501,10 @@ def _default_sampler(
     raise ValueError(f"mixing_aid must be one of {MIXING_AIDS}, got {mixing_aid!r}")
 
 
-def _zero_binary_visible_bias(model: EnergyModel) -> bool:
-    """Whether layer 0 is a binary layer whose bias is still zero (base rates may then set it)."""
-    visible = model.layers[0]
-    return isinstance(visible, BinaryLayer) and not bool(visible.bias.detach().any())
+def _zero_observed_biases(model: EnergyModel) -> bool:
+    """Whether every observed layer has a bias, still zero (the data may then set it)."""
+    biases = [getattr(model.layers[i], "bias", None) for i in model.observed]
+    return all(isinstance(b, nn.Parameter) and not bool(b.detach().any()) for b in biases)
 
 
 def _is_small_rbm(model: EnergyModel) -> bool:
@@ -652,6 +655,8 @@ def _batches(
             yield data[index], index if with_index else None
         return
     for batch in loader:
+        if isinstance(batch, Mapping):  # {observed layer: (B, n_i)}, joined by the caller
+            batch = (batch, None)
         if isinstance(batch, Tensor):
             if with_index:
                 raise ValueError("with DataParticles the DataLoader must yield (v, index) tuples")
