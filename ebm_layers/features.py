@@ -25,12 +25,15 @@ from .phases.mean_field import MeanField
 __all__ = ["ConcatenatedLayers", "FeatureExtractor", "feedforward_network"]
 
 
-def _check_layers(layers: object, num_layers: int) -> tuple[int, ...]:
+def _check_layers(layers: object, num_layers: int, observed: Sequence[int] = (0,)) -> tuple[int, ...]:
     """Return ``layers`` as a tuple of distinct hidden layer indices (every hidden layer if None)."""
-    if num_layers < 2:
-        raise ValueError("the model has no hidden layer (only layer 0, the data), so it has no features")
+    hidden = tuple(i for i in range(num_layers) if i not in observed)
+    if not hidden:
+        raise ValueError(
+            "the model has no hidden layer (only observed layers, the data), so it has no features"
+        )
     if layers is None:
-        return tuple(range(1, num_layers))
+        return hidden
     if isinstance(layers, str | bytes) or not isinstance(layers, Sequence):
         raise TypeError(
             f"layers must be a sequence of hidden layer indices such as [1, 2], got {layers!r} "
@@ -41,11 +44,12 @@ def _check_layers(layers: object, num_layers: int) -> tuple[int, ...]:
     checked: list[int] = []
     for k, index in enumerate(layers):
         index = check_index(f"layers[{k}]", index)
-        if not 1 <= index < num_layers:
-            data = "; layer 0 is the data, not a feature" if index == 0 else ""
+        if index not in hidden:
+            data = f"; layer {index} is observed (the data), not a feature" if index in observed else ""
+            contiguous = hidden == tuple(range(hidden[0], hidden[-1] + 1))
+            where = f"in {hidden[0]}..{hidden[-1]}" if contiguous else f"({', '.join(map(str, hidden))})"
             raise ValueError(
-                f"layers must hold hidden layer indices in 1..{num_layers - 1}, "
-                f"got {index} at layers[{k}]{data}"
+                f"layers must hold hidden layer indices {where}, got {index} at layers[{k}]{data}"
             )
         if index in checked:
             raise ValueError(f"layers must be distinct, got {list(layers)} (layer {index} twice)")
@@ -57,7 +61,7 @@ class FeatureExtractor(nn.Module):
     r"""Mean-field marginals of hidden layers of a model, concatenated: features for a downstream model.
 
     ``features(v) = cat([mu_l(v) for l in layers], dim=1)``, where ``mu`` solves the mean-field
-    fixed point with layer 0 clamped to ``v`` (see :class:`~ebm_layers.MeanField`).
+    fixed point with the observed layers clamped to ``v`` (see :class:`~ebm_layers.MeanField`).
 
     Gradients reach ``v`` and the model's parameters through the fixed point itself (by default
     the mean field's implicit backward), so the extractor can be trained together with a head by
@@ -72,7 +76,8 @@ class FeatureExtractor(nn.Module):
             implicit backward).
 
     Shape:
-        - Input: ``v`` ``(B, n_0)``, values in [0, 1], the model's dtype.
+        - Input: ``v`` ``(B, n_0)`` within the visible layer's support (or an observation of several
+          observed layers), the model's dtype.
         - Output: ``(B, num_features)``, ``num_features = sum(n_l for l in layers)``.
 
     Attributes:
@@ -119,7 +124,7 @@ class FeatureExtractor(nn.Module):
     ) -> None:
         super().__init__()
         check_model(model)
-        layers = _check_layers(layers, len(model.layers))
+        layers = _check_layers(layers, len(model.layers), model.observed)
         if mean_field is None:
             mean_field = MeanField(model, init="bottom-up")
         elif not isinstance(mean_field, MeanField):
@@ -207,7 +212,9 @@ def _chain_matrices(model: EnergyModel) -> list[Tensor]:
         "consecutive layers and nothing else, as built by dbm() or rbm()), because a single bottom-up pass "
         "computes each layer from the one below only; {}. FeatureExtractor handles any graph"
     )
-    for i, layer in enumerate(model.layers):
+    if model.observed != (0,):
+        raise ValueError(why.format(f"the model observes layers {list(model.observed)}, not layer 0 alone"))
+    for i, layer in enumerate(model.layers[1:], start=1):  # the data layer may hold any units
         if not isinstance(layer, BinaryLayer):
             raise ValueError(why.format(f"layers[{i}] is a {type(layer).__name__}, not binary units"))
     matrices: dict[int, Tensor] = {}

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import torch
 from torch import Tensor
 
-from .._checks import check_batch, check_binary_batch, check_model, check_real, check_size
+from .._checks import check_binary_batch, check_model, check_real, check_size
 from .._random import resolve_generator
 from ..model.energy_model import EnergyModel
 from ..model.graph import smallest_cover
@@ -178,7 +178,7 @@ def log_likelihood(
     if method not in METHODS:
         raise ValueError(f"method must be one of {METHODS}, got {method!r}")
     num_samples = check_size("num_samples", num_samples)
-    v = check_batch("v", v, model.sizes[0], dtype=model.dtype, support=model.supports[0])
+    v = model.checked("v", v)
     log_z, estimated = _check_log_z(log_z)
     if method == "auto":
         method = "exact" if posterior_states(model) <= CHEAP_POSTERIOR_STATES else "mean-field"
@@ -220,21 +220,35 @@ def _mean_field(model: EnergyModel, v: Tensor) -> list[Tensor]:
     return MeanField(model, tol=tol, max_iter=MEAN_FIELD_MAX_ITER)(v)
 
 
+def _hidden(model: EnergyModel) -> list[int]:
+    return [i for i in range(len(model.layers)) if i not in model.observed]
+
+
 def _entropy(model: EnergyModel, marginals: Sequence[Tensor]) -> Tensor:
-    """Entropy ``(B,)`` of the factorised ``q`` over the hidden layers with means ``marginals[1:]``:
-    the sum of each layer's ``entropy``."""
-    return sum(layer.entropy(mu) for layer, mu in zip(model.layers[1:], marginals[1:]))
+    """Entropy ``(B,)`` of the factorised ``q`` over the hidden layers with means ``marginals``: the
+    sum of each hidden layer's ``entropy``."""
+    return sum(model.layers[i].entropy(marginals[i]) for i in _hidden(model))
+
+
+def _expected_energy(model: EnergyModel, marginals: Sequence[Tensor]) -> Tensor:
+    """``E_q[E(v, h)]`` ``(B,)`` under the factorised ``q`` over the hidden layers with means ``marginals``.
+
+    Every coupling is linear in each of its layers' states and ``q`` makes them independent (a
+    lateral term has no diagonal, so it never multiplies a unit by itself): the couplings' expected
+    energy is their energy at the marginals. Each hidden layer adds its own ``expected_energy``
+    (its energy at the mean for units whose term is linear, such as binary ones).
+    """
+    total = sum(model.layers[i].energy(marginals[i]) for i in model.observed)
+    for i in _hidden(model):
+        total = total + model.layers[i].expected_energy(marginals[i])
+    for coupling, (a, b) in zip(model.couplings, model.edges):
+        total = total + coupling.energy(marginals[a], marginals[b])
+    return total
 
 
 def _mean_field_bound(model: EnergyModel, marginals: list[Tensor]) -> Tensor:
-    """``-E(v, mu) + H(q)`` ``(B,)``: the lower bound on ``-F(v)`` of the factorised ``q``.
-
-    The energy at the marginals is the expected energy under ``q`` because every coupling is linear
-    in each of its layers' states and ``q`` makes them independent (a lateral term has no diagonal,
-    so it never multiplies a unit by itself), and because a unit term ``U(x)`` of the built-in units
-    is linear in ``x``. A unit type whose ``U`` is not (a quadratic term) would need ``E_q[U]`` here.
-    """
-    return -model.joint_energy(marginals) + _entropy(model, marginals)
+    """``-E_q[E(v, h)] + H(q)`` ``(B,)``: the lower bound on ``-F(v)`` of the factorised ``q``."""
+    return -_expected_energy(model, marginals) + _entropy(model, marginals)
 
 
 def _state_bits(layer: UnitLayer) -> float:
@@ -253,12 +267,13 @@ def _sampled_layers(model: EnergyModel) -> tuple[int, ...]:
     """The hidden layers to draw or enumerate, fewest states first, so that the others sum out given
     them and v.
 
-    It is the smallest cover of the couplings with layer 0 counted as free (v is always given),
-    each layer weighed by ``log2`` of its number of states (binary units: its number of units); a
-    layer that does not list its states weighs infinitely, so it is summed out where it can be.
+    It is the smallest cover of the couplings with the observed layers counted as free (v is always
+    given), each layer weighed by ``log2`` of its number of states (binary units: its number of
+    units); a layer that does not list its states weighs infinitely, so it is summed out where it can be.
     """
-    bits = [0.0, *(_state_bits(layer) for layer in model.layers[1:])]
-    return tuple(i for i in smallest_cover(bits, model.edges) if i != 0)
+    observed = model.observed
+    bits = [0.0 if i in observed else _state_bits(layer) for i, layer in enumerate(model.layers)]
+    return tuple(i for i in smallest_cover(bits, model.edges) if i not in observed)
 
 
 def _importance_estimate(
@@ -278,8 +293,9 @@ def _importance_estimate(
     sampled = _sampled_layers(model)
     inputs = {i: model.input_or_zeros(marginals, i) for i in sampled}
     num_samples = num_samples if sampled else 1  # nothing to draw: every weight is exp(-F(v))
-    v = marginals[0]
-    per_chunk = max(1, _CHUNK_ELEMENTS // (v.shape[0] * sum(model.sizes)))
+    v = {i: marginals[i] for i in model.observed}
+    batch = marginals[0].shape[0]
+    per_chunk = max(1, _CHUNK_ELEMENTS // (batch * sum(model.sizes)))
     log_weights = [
         _log_weights(model, v, inputs, min(per_chunk, num_samples - start), generator)
         for start in range(0, num_samples, per_chunk)
@@ -288,10 +304,15 @@ def _importance_estimate(
 
 
 def _log_weights(
-    model: EnergyModel, v: Tensor, inputs: dict[int, Tensor], count: int, generator: torch.Generator
+    model: EnergyModel,
+    v: dict[int, Tensor],
+    inputs: dict[int, Tensor],
+    count: int,
+    generator: torch.Generator,
 ) -> Tensor:
-    """``-F(v, h) - log q(h)`` ``(B, count)`` for ``count`` draws ``h`` per example."""
-    given = {0: v.repeat_interleave(count, dim=0)}
+    """``-F(v, h) - log q(h)`` ``(B, count)`` for ``count`` draws ``h`` per example (``v`` the observed
+    layers' data)."""
+    given = {i: x.repeat_interleave(count, dim=0) for i, x in v.items()}
     log_q = 0.0
     for i, input in inputs.items():
         input = input.repeat_interleave(count, dim=0)
@@ -299,7 +320,7 @@ def _log_weights(
         given[i] = layer.sample(input, generator)
         log_q = log_q + layer.log_probability(given[i], input)
     log_f = -model.summed_free_energy(given)
-    return (log_f - log_q).view(v.shape[0], count)
+    return (log_f - log_q).view(-1, count)
 
 
 def exact_log_likelihood(model: EnergyModel, v: Tensor, *, max_states: int = MAX_STATES) -> Tensor:
@@ -325,7 +346,7 @@ def exact_free_energy(model: EnergyModel, v: Tensor, *, max_states: int = MAX_ST
     layer whose unit type does not list them.
     """
     check_model(model)
-    v = check_batch("v", v, model.sizes[0], dtype=model.dtype, support=model.supports[0])
+    v = model.checked("v", v)
     layers = _sampled_layers(model)
     total = _joint_state_count(model, layers)
     if math.isinf(total):
@@ -347,7 +368,7 @@ def exact_free_energy(model: EnergyModel, v: Tensor, *, max_states: int = MAX_ST
         v = v.to(torch.float64)
         for start in range(0, total, rows):
             stop = min(start + rows, total)
-            given = {0: v.repeat_interleave(stop - start, dim=0)}
+            given = {i: x.repeat_interleave(stop - start, dim=0) for i, x in model.clamped(v).items()}
             for i, states in joint_states(model, layers, start, stop).items():
                 given[i] = states.to(torch.float64).repeat(batch, 1)
             log_f = -model.summed_free_energy(given)
@@ -362,12 +383,18 @@ def posterior_states(model: EnergyModel) -> int | float:
     return _joint_state_count(model, _sampled_layers(model))
 
 
-def _flip_refusal(layer: UnitLayer) -> str | None:
-    """Why :func:`pseudo_log_likelihood` cannot flip the units of visible ``layer`` (``None``: it can).
+def _flip_refusal(model: EnergyModel) -> str | None:
+    """Why :func:`pseudo_log_likelihood` cannot flip the visible units of ``model`` (``None``: it can).
 
-    It needs every unit to take the values 0 and 1 whatever the others do: a discrete layer whose
-    states are every binary vector.
+    It needs one observed layer, layer 0, every unit of which takes the values 0 and 1 whatever the
+    others do: a discrete layer whose states are every binary vector.
     """
+    if model.observed != (0,):
+        return (
+            "pseudo_log_likelihood flips the units of one visible layer, layer 0; this model observes "
+            f"layers {list(model.observed)}"
+        )
+    layer = model.layers[0]
     name = type(layer).__name__
     if not hasattr(layer, "num_states"):
         return (
@@ -414,7 +441,7 @@ def pseudo_log_likelihood(model: EnergyModel, v: Tensor) -> Tensor:
         tensor([-3.4657, -3.4657], dtype=torch.float64)
     """
     check_model(model)
-    refusal = _flip_refusal(model.layers[0])
+    refusal = _flip_refusal(model)
     if refusal is not None:
         raise ValueError(refusal)
     v = check_binary_batch("v", v, model.sizes[0], dtype=model.dtype)
@@ -495,9 +522,12 @@ def reconstruction_error(model: EnergyModel, v: Tensor) -> Tensor:
         tensor([1.])
     """
     check_model(model)
-    v = check_batch("v", v, model.sizes[0], dtype=model.dtype, support=model.supports[0])
+    v = model.checked("v", v)
     marginals = _mean_field(model, v)
-    return (v - model.layers[0].mean(model.input_or_zeros(marginals, 0))).square().sum(-1)
+    error = 0.0
+    for i, x in model.clamped(v).items():
+        error = error + (x - model.layers[i].mean(model.input_or_zeros(marginals, i))).square().sum(-1)
+    return error
 
 
 @torch.no_grad()
@@ -530,12 +560,12 @@ def free_energy_gap(model: EnergyModel, train: Tensor, test: Tensor, *, method: 
         0.0
     """
     check_model(model)
-    train = check_batch("train", train, model.sizes[0], dtype=model.dtype, support=model.supports[0])
-    test = check_batch("test", test, model.sizes[0], dtype=model.dtype, support=model.supports[0])
+    train = model.checked("train", train)
+    test = model.checked("test", test)
     if method not in ("auto", "exact", "mean-field"):
         raise ValueError(f"method must be 'auto', 'exact' or 'mean-field', got {method!r}")
     if method == "exact" or (method == "auto" and model.has_free_energy):
-        model.check_summable({0})
+        model.check_summable(model.observed)
         train_mean, test_mean = (float(exact_free_energy(model, x).mean()) for x in (train, test))
     else:
         train_mean, test_mean = (
@@ -719,7 +749,7 @@ def evaluate(
     log_z_value, estimated = _check_log_z(log_z)
     cautions = [] if estimate is None or estimate.warning is None else [estimate.warning]
     closed_form = model.has_free_energy
-    flippable = _flip_refusal(model.layers[0]) is None
+    flippable = _flip_refusal(model) is None
     exact = posterior_states(model) <= CHEAP_POSTERIOR_STATES
     reversible = can_reverse_anneal(model)
     target = data if test is None else test

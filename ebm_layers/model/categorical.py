@@ -12,7 +12,7 @@ __all__ = ["CategoricalLayer"]
 
 
 class CategoricalLayer(UnitLayer):
-    r"""``groups`` groups of ``categories`` one-hot units each (softmax units), ``size = groups * categories``.
+    r"""``groups`` groups of ``categories`` one-hot units (softmax units): ``size = groups * categories``.
 
     Energy term :math:`-b \cdot x`; in every state exactly one unit of each group is on. Given its
     input, the groups are independent and group ``g`` takes category ``k`` with probability
@@ -43,7 +43,9 @@ class CategoricalLayer(UnitLayer):
     bias: nn.Parameter
     support = (0.0, 1.0)
 
-    def __init__(self, groups: int, categories: int, *, dtype: torch.dtype | None = None, device=None) -> None:
+    def __init__(
+        self, groups: int, categories: int, *, dtype: torch.dtype | None = None, device=None
+    ) -> None:
         super().__init__()
         self.groups = check_size("groups", groups)
         self.categories = check_size("categories", categories)

@@ -63,7 +63,11 @@ class EnergyModel(nn.Module):
     """
 
     def __init__(
-        self, layers: Sequence[UnitLayer], couplings: Sequence[nn.Module] = (), *, observed: Sequence[int] = (0,)
+        self,
+        layers: Sequence[UnitLayer],
+        couplings: Sequence[nn.Module] = (),
+        *,
+        observed: Sequence[int] = (0,),
     ) -> None:
         super().__init__()
         layers, couplings = _check_modules(layers, couplings)
@@ -168,7 +172,9 @@ class EnergyModel(nn.Module):
                     f"{name} must map every observed layer {list(observed)} to its data, got keys {sorted(x)}"
                 )
             return [(f"{name}[{i}]", x[i]) for i in observed]
-        parts = isinstance(x, (tuple, list)) and all(isinstance(p, Tensor) or hasattr(p, "__array__") for p in x)
+        parts = isinstance(x, (tuple, list)) and all(
+            isinstance(p, Tensor) or hasattr(p, "__array__") for p in x
+        )
         if parts and (x or len(observed) > 1):
             if len(x) != len(observed):
                 raise ValueError(

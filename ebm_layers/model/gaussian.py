@@ -110,7 +110,7 @@ class GaussianLayer(UnitLayer):
             return mean + self.log_std.exp() * noise
 
     def log_partition(self, input: Tensor) -> Tensor:
-        r""":math:`\sum_i b_i u_i + \sigma_i^2 u_i^2 / 2 + \tfrac12 \log(2\pi\sigma_i^2)` (the Gaussian integral)."""
+        r"""The Gaussian integral :math:`\sum_i b_i u_i + \sigma_i^2 u_i^2 / 2 + \log(2\pi\sigma_i^2) / 2`."""
         variance = self._variance()
         terms = self.bias * input + variance * input.square() / 2.0 + (0.5 * _LOG_2PI + self.log_std)
         return terms.sum(-1)

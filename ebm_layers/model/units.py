@@ -182,8 +182,8 @@ class BinaryLayer(UnitLayer):
         outside = int((clipped != rates).sum())
         if outside:
             warnings.warn(
-                f"{outside} of {self.size} units have base rates outside [{RATE_CLIP}, {1 - RATE_CLIP}] in data "
-                "(constant units); clipped for the base model",
+                f"{outside} of {self.size} units have base rates outside [{RATE_CLIP}, {1 - RATE_CLIP}] "
+                "in data (constant units); clipped for the base model",
                 stacklevel=2,
             )
         return {"bias": torch.logit(clipped).to(self.bias.dtype)}

@@ -147,7 +147,9 @@ class PersistentSampler(nn.Module):
         self.sweeps = check_size("sweeps", sweeps)
         if isinstance(init, str):
             if init != "uniform":
-                raise ValueError(f"init must be 'uniform' or a (num_particles, n_0) observation, got {init!r}")
+                raise ValueError(
+                    f"init must be 'uniform' or a (num_particles, n_0) observation, got {init!r}"
+                )
         else:
             init = model.checked("init", init, batch=self.num_particles, convert=True).detach().clone()
         if not isinstance(probabilities, bool):
@@ -175,7 +177,10 @@ class PersistentSampler(nn.Module):
         count, model = self.num_particles, self.model
         given = model.clamped(self.init.to(model.dtype)) if isinstance(self.init, Tensor) else {}
         self._set_particles(
-            [layer.initial_states(count, self.generator, given.get(i)) for i, layer in enumerate(model.layers)]
+            [
+                layer.initial_states(count, self.generator, given.get(i))
+                for i, layer in enumerate(model.layers)
+            ]
         )
 
     @torch.no_grad()
@@ -266,8 +271,8 @@ class DataParticles(nn.Module):
             the global RNG). Its state is saved in ``state_dict()`` and restored on load.
 
     Shape:
-        - ``statistics(v, index)``: ``v`` ``(B, n_0)`` (an observation), ``index`` ``(B,)`` integer; returns the
-          :class:`Statistics` of the clamped batch with its updated hidden states (detached).
+        - ``statistics(v, index)``: ``v`` ``(B, n_0)`` (an observation), ``index`` ``(B,)`` integer;
+          returns the :class:`Statistics` of the clamped batch with its updated hidden states (detached).
           An index repeated within a batch is stored once (the last copy).
 
     Attributes:
@@ -300,7 +305,9 @@ class DataParticles(nn.Module):
         self.hidden = [i for i in range(len(model.layers)) if i not in model.observed]
         for i in self.hidden:
             layer = model.layers[i]
-            self.register_buffer(f"states_{i}", _stored(layer, layer.initial_states(self.num_examples, self.generator)))
+            self.register_buffer(
+                f"states_{i}", _stored(layer, layer.initial_states(self.num_examples, self.generator))
+            )
 
     @torch.no_grad()
     def statistics(self, v: Tensor, index: Tensor | None = None) -> Statistics:
@@ -312,7 +319,9 @@ class DataParticles(nn.Module):
         index = check_example_index("index", index, self.num_examples, v.shape[0])
         given = model.clamped(v)
         stored = {i: getattr(self, f"states_{i}") for i in self.hidden}
-        states = [given[i] if i in given else stored[i][index].to(model.dtype) for i in range(len(model.layers))]
+        states = [
+            given[i] if i in given else stored[i][index].to(model.dtype) for i in range(len(model.layers))
+        ]
         for _ in range(self.sweeps):
             gibbs_sweep(model, states, self.generator, clamped=given.keys())
         for i, buffer in stored.items():

@@ -429,7 +429,9 @@ class _Problem:
     clamped: Marginals
     free: list[int]
     batch: int
-    observed: dict[int, tuple[Tensor, Tensor]] = field(default_factory=dict)  # (mask, values) where some are missing
+    observed: dict[int, tuple[Tensor, Tensor]] = field(
+        default_factory=dict
+    )  # (mask, values) where some are missing
     extra: Marginals = field(default_factory=dict)  # input from the clamped layers, once reduced
     skip: tuple[int, ...] = ()  # the layers whose input is in ``extra``
     parameters: dict[str, Tensor] = field(default_factory=dict)  # substituted (detached) parameters

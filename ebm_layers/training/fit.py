@@ -34,7 +34,7 @@ from ..phases.mean_field import MeanField
 from ..phases.replica_exchange import ReplicaExchangeSampler
 from .distributed import current_world, rank_generator, rank_states, wrap_distributed
 from .objective import TwoPhaseObjective
-from .pretraining import DEFAULT_PRETRAIN_EPOCHS, pretrain
+from .pretraining import DEFAULT_PRETRAIN_EPOCHS, can_pretrain, pretrain
 
 __all__ = ["FitResult", "FitState", "default_optimizer", "fit", "load_checkpoint", "save_checkpoint"]
 
@@ -675,7 +675,7 @@ def _free_energy_gap(model: EnergyModel, validation: Tensor | None, seen: list[T
 
 def _pretrain_epochs(pretrain_epochs: int | None, model: EnergyModel, loader, resume) -> int:
     """Passes per RBM of the greedy pretraining this call runs (0: none)."""
-    deep_chain = len(model.layers) > 2 and model.is_binary_chain()
+    deep_chain = len(model.layers) > 2 and can_pretrain(model)
     if pretrain_epochs is None:
         fresh = deep_chain and resume is None and model.untrained()
         if fresh and loader is not None:

@@ -11,13 +11,17 @@ from torch.nn.utils import parametrize
 from .._checks import check_count, check_model
 from .._random import resolve_generator
 from ..model import functional as F
+from ..model.couplings import DenseCoupling
 from ..model.energy_model import EnergyModel, rbm
+from ..model.gaussian import GaussianLayer
+from ..model.graph import is_chain
+from ..model.units import BinaryLayer
 from ..phases.mean_field import MeanField
 
 if TYPE_CHECKING:
     from .fit import FitResult
 
-__all__ = ["pretrain"]
+__all__ = ["can_pretrain", "pretrain"]
 
 # Measured by benchmarks/digits_features.py (see DEVELOPERS.md): passes over the data per RBM.
 DEFAULT_PRETRAIN_EPOCHS = 30
@@ -49,7 +53,8 @@ def pretrain(
     Args:
         model: a chain as built by :func:`dbm` (dense couplings ``k, k + 1`` only); its
             parameters are overwritten in place.
-        data: ``(N, n_0)`` training data, binary or Bernoulli means.
+        data: ``(N, n_0)`` training data: binary or Bernoulli means, or real values (standardised)
+            when layer 0 is a :class:`GaussianLayer`.
         epochs: passes over the data for each RBM.
         batch_size: batch size of each RBM's :func:`fit` (default: fit's).
         learning_rate: Adam's starting learning rate for each RBM, decayed as in
@@ -76,10 +81,10 @@ def pretrain(
     from .fit import default_optimizer, fit  # fit pretrains by default: imported here (cycle)
 
     check_model(model)
-    if not model.is_binary_chain():
+    if not can_pretrain(model):
         raise ValueError(
-            f"pretrain needs a chain of binary layers and dense couplings (k, k + 1) as built by dbm(), "
-            f"got {model.extra_repr()}"
+            "pretrain needs a chain of binary layers (layer 0 binary or Gaussian) and dense couplings "
+            f"(k, k + 1) as built by dbm(), got {model.extra_repr()}"
         )
     data = model.checked("data", data, convert=True)
     epochs = check_count("epochs", epochs)
@@ -95,6 +100,8 @@ def pretrain(
         stage = rbm(
             n_visible * visible_copies, n_hidden * hidden_copies, generator=generator, dtype=model.dtype
         )
+        if k == 0 and isinstance(model.layers[0], GaussianLayer):
+            stage = _gaussian_stage(stage, model.layers[0], visible_copies)
         _tie(stage, visible_copies, hidden_copies)
         _init_visible_bias(stage, x)
         stage_data = x.repeat(1, visible_copies)
@@ -139,12 +146,35 @@ class _TiedCopies(nn.Module):
         return torch.stack(statistic.chunk(self.copies, dim=self.dim)).sum(0)
 
 
+def can_pretrain(model: EnergyModel) -> bool:
+    """Whether :func:`pretrain` applies: a chain as :func:`dbm` builds (layer 0 observed alone, unmasked
+    dense couplings ``(k, k + 1)``), its layer 0 binary or Gaussian, every other layer binary."""
+    return (
+        model.observed == (0,)
+        and is_chain(len(model.layers), model.edges)
+        and isinstance(model.layers[0], (BinaryLayer, GaussianLayer))
+        and all(isinstance(layer, BinaryLayer) for layer in model.layers[1:])
+        and all(isinstance(c, DenseCoupling) and c.mask is None for c in model.couplings)
+    )
+
+
+def _gaussian_stage(stage: EnergyModel, visible: GaussianLayer, copies: int) -> EnergyModel:
+    """``stage`` with a Gaussian visible layer like ``visible`` (``copies`` copies of its units)."""
+    layer = GaussianLayer(
+        stage.sizes[0], std=visible.initial_std, learn_std=visible.learn_std, dtype=stage.dtype
+    )
+    with torch.no_grad():
+        layer.log_std.copy_(visible.log_std.detach().repeat(copies))
+    return EnergyModel([layer, stage.layers[1]], [stage.couplings[0]])
+
+
 def _tie(stage: EnergyModel, visible_copies: int, hidden_copies: int) -> None:
-    """Make ``stage``'s layers ``copies`` tied copies of one layer (weights and biases shared)."""
+    """Make ``stage``'s layers ``copies`` tied copies of one layer (weights and layer parameters shared)."""
     coupling = stage.couplings[0]
     for copies, layer, dim in ((visible_copies, stage.layers[0], 0), (hidden_copies, stage.layers[1], 1)):
         if copies > 1:
-            parametrize.register_parametrization(layer, "bias", _TiedCopies(copies, 0))
+            for name, _ in list(layer.named_parameters()):
+                parametrize.register_parametrization(layer, name, _TiedCopies(copies, 0))
             parametrize.register_parametrization(coupling, "weight", _TiedCopies(copies, dim))
 
 
@@ -157,9 +187,12 @@ def _free(module: nn.Module, name: str) -> Tensor:
 
 @torch.no_grad()
 def _init_visible_bias(stage: EnergyModel, x: Tensor) -> None:
-    """The visible biases of a stage from the base rates of its (single-copy) input ``x``, as
-    :meth:`EnergyModel.init_visible_bias_from` does for an ordinary model."""
-    _free(stage.layers[0], "bias").copy_(F.base_rate_logits(x, pseudocount=1.0))
+    """The visible biases of a stage from its (single-copy) input ``x``, as
+    :meth:`EnergyModel.init_visible_bias_from` does for an ordinary model (binary units: the base
+    rates' log-odds; Gaussian units: the mean)."""
+    visible = stage.layers[0]
+    bias = F.base_rate_logits(x, pseudocount=1.0) if isinstance(visible, BinaryLayer) else x.mean(0)
+    _free(visible, "bias").copy_(bias)
 
 
 @torch.no_grad()
@@ -169,7 +202,8 @@ def _compose(model: EnergyModel, stages: list[EnergyModel]) -> None:
     for k, stage in enumerate(stages):
         scale = 0.5 if 0 < k < last else 1.0
         model.couplings[k].weight.copy_(scale * _free(stage.couplings[0], "weight"))
-    model.layers[0].bias.copy_(_free(stages[0].layers[0], "bias"))
+    for name, parameter in model.layers[0].named_parameters():  # the bias, and a learned log_std
+        parameter.copy_(_free(stages[0].layers[0], name))
     model.layers[-1].bias.copy_(_free(stages[-1].layers[1], "bias"))
     for k in range(1, len(model.layers) - 1):
         below, above = _free(stages[k - 1].layers[1], "bias"), _free(stages[k].layers[0], "bias")
