@@ -34,6 +34,7 @@ from .evaluation.partition import (
     exact_log_partition,
     reverse_ais_log_likelihood,
 )
+from .evaluation.prediction import conditional_log_likelihood, predict
 from .features import ConcatenatedLayers, FeatureExtractor, feedforward_network
 from .model.categorical import CategoricalLayer
 from .model.couplings import Coupling, DenseCoupling, LateralCoupling
@@ -45,7 +46,7 @@ from .model.units import BinaryLayer, UnitLayer
 from .phases.contrastive_divergence import ContrastiveDivergence
 from .phases.exact import ExactStatistics
 from .phases.fast_weights import FastWeightsSampler
-from .phases.gibbs import DataParticles, PersistentSampler
+from .phases.gibbs import DataParticles, PersistentSampler, sample_given
 from .phases.mean_field import MeanField
 from .phases.replica_exchange import ReplicaExchangeSampler
 from .training.distributed import rank_generator, rank_states, wrap_distributed
@@ -88,6 +89,7 @@ __all__ = [
     "ais_log_partition",
     "annealing_schedule",
     "autocorrelation_time",
+    "conditional_log_likelihood",
     "datasets",
     "dbm",
     "default_optimizer",
@@ -108,6 +110,7 @@ __all__ = [
     "mode_switching_rate",
     "nearest_template",
     "potential_scale_reduction",
+    "predict",
     "pretrain",
     "pseudo_log_likelihood",
     "rank_generator",
@@ -115,6 +118,7 @@ __all__ = [
     "rbm",
     "reconstruction_error",
     "reverse_ais_log_likelihood",
+    "sample_given",
     "sampler_traces",
     "save_checkpoint",
     "save_image_grid",

@@ -267,13 +267,18 @@ class EnergyModel(nn.Module):
                 total = total + coupling.energy(states[a], states[b])
         return total
 
-    def statistics(self, states: Sequence[Tensor], weights: Tensor | None = None) -> Statistics:
+    def statistics(
+        self, states: Sequence[Tensor], weights: Tensor | None = None, means: Collection[int] = ()
+    ) -> Statistics:
         """:class:`Statistics` of joint states (one ``(B, n_i)`` tensor per layer, or marginals):
         every module's average ``-dE/dtheta``, keyed like ``named_parameters()``; weighted by
-        ``weights`` ``(B,)`` (summing to one) when given. Not checked: the phases call it."""
+        ``weights`` ``(B,)`` (summing to one) when given. The layers in ``means`` hold the means of
+        factorised distributions (mean-field marginals, exact conditionals), averaged over by the
+        layer's ``expected_statistics``. Not checked: the phases call it."""
         out = Statistics()
         for i, (prefix, layer) in enumerate(self._layer_prefixes):
-            for name, value in _pulled_back(layer, layer.statistics(states[i], weights)):
+            own = layer.expected_statistics if i in means else layer.statistics
+            for name, value in _pulled_back(layer, own(states[i], weights)):
                 out[prefix + name] = value
         for prefix, coupling, (a, b) in self._coupling_prefixes:
             for name, value in _pulled_back(coupling, coupling.statistics(states[a], states[b], weights)):

@@ -75,15 +75,12 @@ class GaussianLayer(UnitLayer):
             raise TypeError(f"learn_std must be a bool, got {learn_std!r}")
         self.bias = nn.Parameter(torch.empty(self.size, dtype=dtype, device=device))
         log_std = torch.empty(self.size, dtype=dtype, device=device)
+        self.learn_std = learn_std  # a flag: the parameter may be substituted by a plain tensor
         if learn_std:
             self.log_std = nn.Parameter(log_std)
         else:
             self.register_buffer("log_std", log_std)
         self.reset_parameters()
-
-    @property
-    def learn_std(self) -> bool:
-        return isinstance(self.log_std, nn.Parameter)
 
     def reset_parameters(self) -> None:
         """Zero bias, every standard deviation at ``std``."""
@@ -137,6 +134,14 @@ class GaussianLayer(UnitLayer):
         out = {"bias": average(centred) / variance}
         if self.learn_std:
             out["log_std"] = average(centred.square()) / variance
+        return out
+
+    def expected_statistics(self, mean: Tensor, weights: Tensor | None = None) -> dict[str, Tensor]:
+        """:meth:`statistics` averaged over independent Gaussians with this mean and the layer's
+        variances: ``E[(x - b)^2] / sigma^2 = (mean - b)^2 / sigma^2 + 1`` for ``log_std``."""
+        out = self.statistics(mean, weights)
+        if self.learn_std:
+            out["log_std"] = out["log_std"] + 1.0
         return out
 
     def base_parameters(self, data: Tensor | None = None) -> dict[str, Tensor]:

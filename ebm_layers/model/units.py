@@ -41,13 +41,15 @@ class UnitLayer(nn.Module):
 
     Optional hooks with defaults: ``as_states(x)`` turns data in the layer's own encoding (class
     labels) into states; ``check_states(name, x)`` rejects data the support alone does not rule out;
-    ``expected_energy(mean)`` is ``E[U(x)]`` under the factorised distribution with that mean
-    (``energy(mean)`` for units whose term is linear in ``x``); ``base_parameters(data)`` gives the
-    independent base model annealing starts from.
+    ``expected_energy(mean)`` and ``expected_statistics(mean, weights)`` average ``U`` and the
+    statistics over the factorised distribution with that mean (by default their values at the
+    mean, exact for units whose term is linear in ``x``); ``base_parameters(data)`` gives the
+    independent base model annealing and tempering start from.
 
-    Annealing and tempering interpolate a layer's parameters (``beta * theta + (1 - beta) * theta_0``,
-    possibly one row per chain); that follows the energy exactly when ``U`` is linear in the
-    parameters, as for the exponential-family units in natural parameters built in here.
+    Annealing and tempering interpolate the parameters ``base_parameters`` returns
+    (``beta * theta + (1 - beta) * theta_0``, possibly one row per chain) and keep the others; that
+    follows the interpolated energy exactly (up to a constant) when ``U`` is linear in the
+    interpolated parameters, as for binary and categorical biases and a Gaussian layer's mean.
     """
 
     size: int
@@ -72,6 +74,12 @@ class UnitLayer(nn.Module):
         """``{parameter name: batch average of -dU/dtheta}`` over states ``x`` ``(B, n)``; weighted by
         ``weights`` ``(B,)`` (summing to one) when given. Generic: autograd of ``energy``."""
         return autograd_statistics(self, lambda: self.energy(x.detach()), weights)
+
+    def expected_statistics(self, mean: Tensor, weights: Tensor | None = None) -> dict[str, Tensor]:
+        """:meth:`statistics` averaged over the factorised distribution with this ``mean`` ``(B, n)``
+        (the layer's conditional, as mean field and exact enumeration give it): ``statistics(mean)``,
+        exact when ``-dU/dtheta`` is linear in ``x``; override otherwise."""
+        return self.statistics(mean, weights)
 
     def as_states(self, x: Tensor) -> Tensor:
         """Data in the layer's own encoding as ``(B, n)`` states (default: ``x`` itself)."""

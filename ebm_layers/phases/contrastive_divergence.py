@@ -80,7 +80,7 @@ class ContrastiveDivergence(nn.Module):
         for step in range(self.steps):
             last = self.probabilities and step == self.steps - 1
             probabilities = gibbs_sweep(model, states, self.generator, keep_probabilities=last)
-        return model.statistics([probabilities.get(i, x) for i, x in enumerate(states)])
+        return model.statistics([probabilities.get(i, x) for i, x in enumerate(states)], means=probabilities)
 
     def extra_repr(self) -> str:
         return f"steps={self.steps}, probabilities={self.probabilities}"

@@ -107,7 +107,7 @@ def exact_moments(
                     given[i] if i in given else model.layers[i].mean(inputs[i])
                     for i in range(len(model.layers))
                 ]
-                chunk = model.statistics(full, chunk_weights)
+                chunk = model.statistics(full, chunk_weights, means=summed_out)
                 sums = {
                     name: sums[name] * rescale + value if name in sums else value
                     for name, value in chunk.items()

@@ -11,7 +11,7 @@ from torch import Tensor, nn
 from tqdm.auto import tqdm
 
 from .._buffers import buffer_family, register_buffer_family, set_buffer_family
-from .._checks import check_count, check_example_index, check_model, check_size
+from .._checks import check_count, check_example_index, check_index, check_model, check_size
 from .._random import resolve_generator, track_generator_state
 from ..model import functional as F
 from ..model.energy_model import EnergyModel
@@ -19,7 +19,7 @@ from ..model.parameters import substituted
 from ..model.statistics import Statistics
 from ..model.units import UnitLayer
 
-__all__ = ["DataParticles", "PersistentSampler", "gibbs_sweep"]
+__all__ = ["DataParticles", "PersistentSampler", "gibbs_sweep", "sample_given"]
 
 
 @torch.no_grad()
@@ -84,6 +84,50 @@ def gibbs_sweep(
             for i, x in new.items():
                 states[i] = x
     return probabilities
+
+
+@torch.no_grad()
+def sample_given(
+    model: EnergyModel,
+    clamp: Mapping[int, Tensor],
+    *,
+    sweeps: int = 1000,
+    generator: torch.Generator | None = None,
+    progress: bool = True,
+) -> list[Tensor]:
+    """Joint states drawn with some layers held fixed: one chain per row of ``clamp``'s tensors, each
+    started from the other layers' ``initial_states`` and advanced ``sweeps`` block Gibbs sweeps
+    with the layers in ``clamp`` fixed (for example samples of each class with a label layer
+    clamped). The chains sample the model's conditional given the clamped layers in the long run.
+
+    Args:
+        model: the :class:`EnergyModel`.
+        clamp: ``{layer index: (B, n_i) states}`` (class labels for a categorical layer are accepted).
+        sweeps: Gibbs sweeps (enough for the small models measured here, not a guarantee).
+        generator: the ``torch.Generator`` of every draw.
+        progress: show a tqdm bar.
+
+    Returns:
+        one ``(B, n_i)`` tensor per layer (the clamped ones as given), detached; for noise-free
+        pictures of a layer, its conditional mean ``model.conditional_mean(states, i)``.
+    """
+    check_model(model)
+    sweeps = check_size("sweeps", sweeps)
+    if not isinstance(clamp, Mapping) or not clamp:
+        raise TypeError(f"clamp must be a non-empty dict {{layer index: (B, n_i) tensor}}, got {clamp!r}")
+    given, batch = {}, None
+    for i, x in clamp.items():
+        i = check_index("clamp layer", i, len(model.layers))
+        given[i] = model.checked(f"clamp[{i}]", x, i, batch=batch, convert=True)
+        batch = given[i].shape[0]
+    generator = resolve_generator(generator)
+    states = [
+        given[i] if i in given else layer.initial_states(batch, generator)
+        for i, layer in enumerate(model.layers)
+    ]
+    for _ in tqdm(range(sweeps), desc="sampling", unit="sweep", disable=not progress):
+        gibbs_sweep(model, states, generator, clamped=given.keys())
+    return states
 
 
 class PersistentSampler(nn.Module):
@@ -214,7 +258,7 @@ class PersistentSampler(nn.Module):
         As a negative phase it is handed the batch ``v``; persistent chains do not use it."""
         probabilities = self._advance(self.sweeps, self.probabilities)
         states = [probabilities.get(i, x) for i, x in enumerate(self.particles)]
-        return self.model.statistics(states)
+        return self.model.statistics(states, means=probabilities)
 
     @torch.no_grad()
     def sample(

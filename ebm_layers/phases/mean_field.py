@@ -176,7 +176,10 @@ class MeanField(nn.Module):
         """:class:`Statistics` of the marginals (pairs ``mu_a^T mu_b / B``), detached."""
         if index is not None:
             raise ValueError("index is only used with DataParticles; MeanField needs no index")
-        return self.model.statistics(self(v, clamp, missing))
+        model = self.model
+        given = {*model.observed, *(clamp or {})}
+        free = [i for i in range(len(model.layers)) if i not in given]
+        return model.statistics(self(v, clamp, missing), means=free)
 
     # -- the forward iteration -------------------------------------------------------------
 

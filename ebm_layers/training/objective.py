@@ -12,6 +12,7 @@ from torch import Tensor, nn
 
 from .._buffers import buffer_family, register_buffer_family
 from .._checks import check_model, check_range
+from ..evaluation.prediction import check_discriminative, conditional_log_likelihood
 from ..model.couplings import DenseCoupling, LateralCoupling
 from ..model.energy_model import EnergyModel
 from ..model.statistics import Statistics
@@ -90,6 +91,14 @@ class TwoPhaseObjective(nn.Module):
             ``1.0`` keeps them fixed.
         data: with ``centering``, training data ``(N, n_0)``: the visible offsets start at its
             mean (:meth:`init_offsets`; ``fit`` does this with its own data when not given).
+        discriminative_layer: an observed layer (a label layer) whose exact conditional given the
+            other observed layers is also trained: ``discriminative_weight`` times the mean of
+            ``-log p(x_layer | the others)`` (:func:`conditional_log_likelihood`) is added to the
+            loss, by autograd: the hybrid objective of "Classification using Discriminative
+            Restricted Boltzmann Machines" (ICML 2008), there with the generative part weighted
+            instead (the same up to the learning rate). Needs a closed-form free energy and a
+            layer that lists its states.
+        discriminative_weight: the weight of that term (default 1).
         max_weight: divergence guard. Before the statistics of a step are used, every parameter
             must be finite and every weight at most ``max_weight`` in magnitude, and the statistics
             and loss must be finite; otherwise ``FloatingPointError`` is raised before any gradient
@@ -133,6 +142,8 @@ class TwoPhaseObjective(nn.Module):
         offset_decay: float = 0.99,
         data: Tensor | None = None,
         max_weight: float = 1e4,
+        discriminative_layer: int | None = None,
+        discriminative_weight: float = 1.0,
     ) -> None:
         super().__init__()
         check_model(model)
@@ -163,6 +174,10 @@ class TwoPhaseObjective(nn.Module):
             raise ValueError("data= sets the centering offsets; it needs centering=True")
         offset_decay = check_range("offset_decay", offset_decay, 0.0, 1.0, closed="[]")
         max_weight = check_range("max_weight", max_weight, 0.0, closed="()")
+        discriminative_weight = check_range("discriminative_weight", discriminative_weight, 0.0)
+        if discriminative_layer is not None:
+            discriminative_layer = check_discriminative(model, discriminative_layer)
+        self.discriminative_layer, self.discriminative_weight = discriminative_layer, discriminative_weight
         self.model, self.positive, self.negative = model, positive, negative
         self.sparsity_target, self.sparsity_cost, self.sparsity_decay = (
             sparsity_target,
@@ -193,7 +208,9 @@ class TwoPhaseObjective(nn.Module):
         model = self.model
         parameters = dict(model.named_parameters())
         self.check_parameters(parameters)
-        if isinstance(v, Tensor) and not (v.is_floating_point() or v.is_complex()):
+        if not isinstance(v, Tensor):  # one tensor per observed layer: joined once for both phases
+            v = model.checked("v", v)
+        elif not (v.is_floating_point() or v.is_complex()):
             v = v.to(model.dtype)  # binary data kept as bool or uint8
         data = self.positive.statistics(v, **kwargs)
         fantasy = self.negative.statistics(v, **kwargs)
@@ -201,6 +218,9 @@ class TwoPhaseObjective(nn.Module):
         coefficients, running = self._coefficients(difference, data, fantasy)
         # Linear in the parameters: d loss / d theta = -coefficient, an elementwise backward.
         loss = -sum(_dot(parameters[name], c) for name, c in coefficients.items())
+        if self.discriminative_layer is not None and self.discriminative_weight > 0:
+            conditional = conditional_log_likelihood(model, v, self.discriminative_layer)
+            loss = loss - self.discriminative_weight * conditional.mean()
         # Any non-finite statistic makes the loss non-finite (NaN and Inf propagate through it).
         finite = bool(torch.isfinite(loss))
         if self.process_group is not None and on_any_rank(not finite, self.process_group):
@@ -293,12 +313,13 @@ class TwoPhaseObjective(nn.Module):
 
     @torch.no_grad()
     def init_offsets(self, data: Tensor) -> None:
-        """Start the visible offsets at the mean of ``data`` ``(N, n_0)`` (the hidden ones stay at
+        """Start the observed layers' offsets at the mean of ``data`` ``(N, n_0)`` (the hidden ones stay at
         0.5), as "How to Center Deep Boltzmann Machines" (JMLR 2016) recommends."""
         if not self.centering:
             raise ValueError("init_offsets needs an objective built with centering=True")
         data = self.model.checked("data", data)
-        self.offset_0.copy_(data.mean(0))
+        for i, x in self.model.clamped(data).items():
+            getattr(self, f"offset_{i}").copy_(x.mean(0))
         self.offsets_unset = False
 
     @property
