@@ -1,10 +1,12 @@
-"""Demo data: synthetic 12x12 binary scans of stamped markings from a parts line.
+"""Demo data: synthetic 12x12 scans of stamped markings from a parts line, binarised or grey.
 
 The scenario is our own and the data are invented; nothing is read from files or downloaded. A
-stamping station marks every part with one of eight marking types; a camera takes a binarised
-12x12 scan of the marking. Each scan is the type's drawing with a small random shift, a random
-stroke thickness, now and then a missing segment (a worn die), and pixel-flip noise (dust,
-glare). Every type is one mode of the data, so samples of a model trained on it show plainly
+stamping station marks every part with one of eight marking types; a camera takes a 12x12 scan
+of the marking. Each scan is the type's drawing with a small random shift, a random stroke
+thickness and now and then a missing segment (a worn die). The binarised scans
+(:func:`parts_markings`) carry pixel-flip noise (dust, glare); the grey-level scans
+(:func:`grey_parts_markings`) carry soft stroke edges, a per-scan ink contrast and Gaussian
+sensor noise. Every type is one mode of the data, so samples of a model trained on it show plainly
 whether they cover all modes.
 """
 
@@ -18,7 +20,14 @@ from torch import Tensor
 from ._checks import check_size
 from ._random import resolve_generator
 
-__all__ = ["IMAGE_SHAPE", "MARKING_SHARES", "MARKING_TYPES", "marking_templates", "parts_markings"]
+__all__ = [
+    "IMAGE_SHAPE",
+    "MARKING_SHARES",
+    "MARKING_TYPES",
+    "grey_parts_markings",
+    "marking_templates",
+    "parts_markings",
+]
 
 IMAGE_SHAPE = (12, 12)
 MARKING_TYPES = ("stroke", "ring", "bar", "cross", "corners", "chevron", "triangle", "frame")
@@ -33,6 +42,10 @@ SHIFT = 1.0
 THICKNESS = (0.55, 1.0)
 MISSING = 0.1
 FLIP = 0.03
+# Grey scans: ink contrast drawn uniformly between the two CONTRAST values (worn ink, lighting),
+# Gaussian sensor noise of standard deviation NOISE on a 0 (paper) .. 1 (full ink) scale.
+CONTRAST = (0.6, 1.0)
+NOISE = 0.15
 
 
 Line = tuple[float, float, float, float]
@@ -83,6 +96,12 @@ def _ink(lines: Tensor, shift: Tensor, half_width: Tensor) -> Tensor:
 
     ``lines`` is ``(B, L, 4)`` (a NaN row is a line left out), ``shift`` ``(B, 2)``, ``half_width`` ``(B,)``.
     """
+    distance = _distance(lines, shift)
+    return (distance <= half_width[:, None]).to(lines.dtype)
+
+
+def _distance(lines: Tensor, shift: Tensor) -> Tensor:
+    """Distance ``(B, 144)`` from each pixel centre to the nearest line (infinite without lines)."""
     px, py = _pixel_centres(lines.dtype)
     x0, y0 = lines[..., 0] + shift[:, :1], lines[..., 1] + shift[:, 1:]
     dx, dy = lines[..., 2] - lines[..., 0], lines[..., 3] - lines[..., 1]
@@ -92,7 +111,7 @@ def _ink(lines: Tensor, shift: Tensor, half_width: Tensor) -> Tensor:
     t = ((rel_x * dx[..., None] + rel_y * dy[..., None]) / length2).clamp(0.0, 1.0)
     distance2 = (rel_x - t * dx[..., None]).square() + (rel_y - t * dy[..., None]).square()
     distance2 = distance2.nan_to_num(nan=math.inf).amin(1)  # nearest line; missing lines never ink
-    return (distance2 <= half_width[:, None].square()).to(lines.dtype)
+    return distance2.sqrt()
 
 
 def _lines(kinds: Tensor, keep: Tensor, dtype: torch.dtype) -> Tensor:
@@ -171,9 +190,70 @@ def parts_markings(
         (torch.Size([5, 144]), torch.Size([5]))
     """
     num_examples = check_size("num_examples", num_examples)
-    for name, value, top in (("flip", flip, 1.0), ("missing", missing, 1.0 - 1e-9)):
-        if not isinstance(value, (int, float)) or not 0.0 <= value <= top:
-            raise ValueError(f"{name} must be a probability{' below 1' if top < 1 else ''}, got {value!r}")
+    _check_probability("flip", flip)
+    labels, lines, shift, half_width, generator = _draw_markings(num_examples, generator, missing, dtype)
+    images = _ink(lines, shift, half_width)
+    flips = torch.rand(images.shape, generator=generator, dtype=dtype) < flip
+    return torch.where(flips, 1.0 - images, images), labels
+
+
+def grey_parts_markings(
+    num_examples: int,
+    *,
+    generator: torch.Generator | None = None,
+    noise: float = NOISE,
+    missing: float = MISSING,
+    dtype: torch.dtype = torch.float32,
+) -> tuple[Tensor, Tensor]:
+    """Draw ``num_examples`` grey-level marking scans (invented data, see the module docstring).
+
+    The same drawings as :func:`parts_markings` (types, shifts, thicknesses, missing segments), but
+    a pixel holds how much ink it sees: 1 well inside a stroke, falling linearly to 0 over one pixel
+    across the stroke's edge, times the scan's ink contrast (uniform in ``CONTRAST``), plus
+    independent Gaussian sensor noise of standard deviation ``noise``. Same generator state, same
+    data.
+
+    Args:
+        num_examples: number of scans.
+        generator: the ``torch.Generator`` of every draw (``None``: seeded once from torch's
+            global generator).
+        noise: standard deviation of the sensor noise, ``>= 0``.
+        missing: probability in [0, 1) that a segment is missing.
+        dtype: floating dtype of the images.
+
+    Returns:
+        ``(images, labels)``: ``(num_examples, 144)`` real-valued images (rows of the 12x12 scan, top
+        first; about 0 for paper, up to 1 for full ink, plus noise) and ``(num_examples,)`` int64
+        type indices into ``MARKING_TYPES``.
+
+    Examples::
+
+        >>> images, labels = grey_parts_markings(5, generator=torch.Generator().manual_seed(0))
+        >>> images.shape, images.dtype
+        (torch.Size([5, 144]), torch.float32)
+    """
+    num_examples = check_size("num_examples", num_examples)
+    if isinstance(noise, bool) or not isinstance(noise, (int, float)) or not 0.0 <= noise < math.inf:
+        raise ValueError(f"noise must be a finite number >= 0, got {noise!r}")
+    labels, lines, shift, half_width, generator = _draw_markings(num_examples, generator, missing, dtype)
+    ink = (half_width[:, None] + 0.5 - _distance(lines, shift)).clamp(0.0, 1.0)
+    low, high = CONTRAST
+    contrast = low + (high - low) * torch.rand(num_examples, 1, generator=generator, dtype=dtype)
+    sensor = torch.randn(ink.shape, generator=generator, dtype=dtype) * noise
+    return ink * contrast + sensor, labels
+
+
+def _check_probability(name: str, value: object, top: float = 1.0) -> None:
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0.0 <= value <= top:
+        raise ValueError(f"{name} must be a probability{' below 1' if top < 1 else ''}, got {value!r}")
+
+
+def _draw_markings(
+    num_examples: int, generator: torch.Generator | None, missing: float, dtype: torch.dtype
+) -> tuple[Tensor, Tensor, Tensor, Tensor, torch.Generator]:
+    """The drawings both kinds of scan share: types, lines (missing segments NaN), shifts and
+    half-widths, drawn in this order from ``generator`` (resolved, and returned for the noise)."""
+    _check_probability("missing", missing, 1.0 - 1e-9)
     if not (isinstance(dtype, torch.dtype) and dtype.is_floating_point):
         raise TypeError(f"dtype must be a floating torch.dtype, got {dtype!r}")
     generator = resolve_generator(generator)
@@ -187,6 +267,4 @@ def parts_markings(
     counts = torch.tensor([len(_SEGMENTS[name]) for name in MARKING_TYPES])[labels]
     first = torch.randint(0, 2**31, (num_examples,), generator=generator) % counts
     keep[torch.arange(num_examples), first] = True
-    images = _ink(_lines(labels, keep, dtype), shift, half_width)
-    flips = torch.rand(images.shape, generator=generator, dtype=dtype) < flip
-    return torch.where(flips, 1.0 - images, images), labels
+    return labels, _lines(labels, keep, dtype), shift, half_width, generator
