@@ -1,5 +1,5 @@
-"""ebm_layers: binary layered energy models (RBMs, deep Boltzmann machines, any layered graph
-of binary units) as composable ``torch.nn`` modules, on CPU."""
+"""ebm_layers: layered energy models (RBMs, deep Boltzmann machines, any layered graph of binary,
+Gaussian or categorical units) as composable ``torch.nn`` modules, on CPU."""
 
 from . import datasets
 from .evaluation.diagnostics import (

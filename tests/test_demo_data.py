@@ -24,7 +24,15 @@ import torch
 from scipy.stats import chisquare
 
 import ebm_layers as el
-from ebm_layers.datasets import IMAGE_SHAPE, MARKING_SHARES, MARKING_TYPES, marking_templates, parts_markings
+from ebm_layers.datasets import (
+    CONTRAST,
+    IMAGE_SHAPE,
+    MARKING_SHARES,
+    MARKING_TYPES,
+    grey_parts_markings,
+    marking_templates,
+    parts_markings,
+)
 from tests.helpers import seeded
 
 # -- the generator --------------------------------------------------------------------------------
@@ -91,6 +99,34 @@ def test_bad_generator_arguments(options, error, fragment):
     arguments = {"num_examples": 5, **options}
     with pytest.raises(error, match=fragment):
         parts_markings(arguments.pop("num_examples"), **arguments)
+
+
+def test_grey_scans_are_the_binary_drawings_with_soft_ink_contrast_and_sensor_noise():
+    grey, labels = grey_parts_markings(3000, generator=seeded(7))
+    again, again_labels = grey_parts_markings(3000, generator=seeded(7))
+    assert torch.equal(grey, again) and torch.equal(labels, again_labels)
+    assert grey.shape == (3000, 144) and grey.dtype == torch.float32
+    # The same types as the binary scans from the same seed: the drawings are drawn first.
+    _, binary_labels = parts_markings(3000, generator=seeded(7))
+    assert torch.equal(labels, binary_labels)
+    # Without noise every pixel lies in [0, 1]; the noise is Gaussian with the given standard
+    # deviation (residual of two noisy copies of the same clean scans: variance 2 noise^2; common
+    # practice, no source).
+    clean, _ = grey_parts_markings(3000, generator=seeded(8), noise=0.0)
+    assert float(clean.min()) >= 0.0 and float(clean.max()) <= 1.0
+    noisy, _ = grey_parts_markings(3000, generator=seeded(8), noise=0.2)
+    residual = (noisy - clean).flatten()
+    assert abs(float(residual.std()) - 0.2) < 0.005 and abs(float(residual.mean())) < 0.002
+    # A scan's brightest pixel is at most its ink contrast (thin strokes may ink no pixel fully):
+    # never above CONTRAST, mostly within it, and spread over it.
+    peaks = clean.amax(1)
+    assert float(peaks.max()) <= CONTRAST[1] + 1e-6
+    assert float(peaks.median()) >= CONTRAST[0] and float(peaks.std()) > 0.05
+    # The nearest template (of the binary drawings) still names most grey scans.
+    named = el.nearest_template(marking_templates())(grey)
+    assert float((named == labels).double().mean()) > 0.85
+    with pytest.raises(ValueError, match="noise must be a finite number >= 0"):
+        grey_parts_markings(5, noise=-1.0)
 
 
 # -- mode occupancy -------------------------------------------------------------------------------

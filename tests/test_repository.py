@@ -64,6 +64,23 @@ def test_custom_modules_example_runs_at_tiny_size(tmp_path):
 
 
 @pytest.mark.slow
+def test_grey_markings_example_runs_at_tiny_size(tmp_path):
+    # Source of the check: common practice, no source (a smoke test: it runs, prints its table and
+    # saves its pictures).
+    result = run_script(
+        ROOT / "examples" / "grey_markings.py",
+        *"--examples 200 --test-examples 100 --epochs 1 --hidden 16 --betas 20 --sweeps 5".split(),
+        "--no-progress",
+        timeout=300,
+        cwd=tmp_path,
+    )
+    assert result.returncode == 0, result.stderr
+    for row in ("test log p(scan, type)", "accuracy, free energy", "accuracy, logistic regression"):
+        assert row in result.stdout
+    assert (tmp_path / "out" / "grey" / "samples_by_type.png").exists()
+
+
+@pytest.mark.slow
 def test_small_models_example_runs_and_prints_exact_log_partition():
     result = run_script(ROOT / "examples" / "small_models.py")
     assert result.returncode == 0, result.stderr
