@@ -152,6 +152,64 @@ def test_distributed_gradient_and_parameters_equal_one_process_with_both_shards(
     assert difference > 1e-3
 
 
+def labelled_setup() -> tuple[el.EnergyModel, tuple[torch.Tensor, torch.Tensor]]:
+    """A Gaussian scan layer and a label layer, both observed, joined through one hidden layer."""
+    model = el.EnergyModel(
+        [el.GaussianLayer(5, learn_std=True), el.BinaryLayer(4), el.CategoricalLayer(1, 3)],
+        [el.DenseCoupling(0, 1, 5, 4), el.DenseCoupling(1, 2, 4, 3)],
+        observed=(0, 2),
+    ).double()
+    model.reset_parameters(torch.Generator().manual_seed(2))
+    g = torch.Generator().manual_seed(3)
+    data = torch.randn(STEPS * WORLD * SHARD, 5, dtype=torch.float64, generator=g)
+    labels = torch.randint(0, 3, (len(data),), generator=g)
+    return model, (data, labels)
+
+
+def labelled_objective(model: el.EnergyModel, sampler: el.PersistentSampler) -> el.TwoPhaseObjective:
+    # The hybrid objective: the discriminative term's gradient is averaged over the ranks too.
+    return el.TwoPhaseObjective(
+        model, el.MeanField(model), sampler, discriminative_layer=2, discriminative_weight=2.0
+    )
+
+
+def labelled_worker(rank: int, folder: str) -> None:
+    join_group(rank, folder)
+    model, (data, labels) = labelled_setup()
+    sampler = el.PersistentSampler(model, num_particles=3, generator=el.rank_generator(7))
+    wrapped = el.wrap_distributed(labelled_objective(model, sampler))
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.05)
+    record = []
+    for step in range(2):
+        start = (step * WORLD + rank) * SHARD
+        loss = wrapped((data[start : start + SHARD], labels[start : start + SHARD]))
+        optimizer.zero_grad()
+        loss.backward()
+        record.append(([x.clone() for x in sampler.particles], [p.grad.clone() for p in model.parameters()]))
+        optimizer.step()
+    torch.save(record, Path(folder) / f"rank{rank}.pt")
+    dist.destroy_process_group()
+
+
+@pytest.mark.slow
+def test_distributed_observations_of_two_layers_and_the_hybrid_term_average_like_one_process(tmp_path):
+    run_ranks(labelled_worker, str(tmp_path))
+    ranks = [torch.load(tmp_path / f"rank{r}.pt", weights_only=True) for r in range(WORLD)]
+    model, (data, labels) = labelled_setup()
+    sampler = el.PersistentSampler(model, num_particles=WORLD * 3, generator=torch.Generator().manual_seed(9))
+    objective = labelled_objective(model, sampler)
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.05)
+    for step in range(2):
+        rows = slice(step * WORLD * SHARD, (step + 1) * WORLD * SHARD)
+        particles = [torch.cat(layer) for layer in zip(*(r[step][0] for r in ranks))]
+        optimizer.zero_grad()
+        reference_step(objective, sampler, (data[rows], labels[rows]), particles)
+        for r in ranks:
+            for ours, theirs in zip(r[step][1], (p.grad for p in model.parameters())):
+                torch.testing.assert_close(ours, theirs, rtol=0, atol=1e-12)
+        optimizer.step()
+
+
 # -- fit(distributed=True): rank-local particles, bit-identical resume ---------------------------
 
 
