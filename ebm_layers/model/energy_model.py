@@ -268,17 +268,26 @@ class EnergyModel(nn.Module):
         return total
 
     def statistics(
-        self, states: Sequence[Tensor], weights: Tensor | None = None, means: Collection[int] = ()
+        self,
+        states: Sequence[Tensor],
+        weights: Tensor | None = None,
+        means: Collection[int] | Mapping[int, Tensor | None] = (),
     ) -> Statistics:
         """:class:`Statistics` of joint states (one ``(B, n_i)`` tensor per layer, or marginals):
         every module's average ``-dE/dtheta``, keyed like ``named_parameters()``; weighted by
         ``weights`` ``(B,)`` (summing to one) when given. The layers in ``means`` hold the means of
         factorised distributions (mean-field marginals, exact conditionals), averaged over by the
-        layer's ``expected_statistics``. Not checked: the phases call it."""
+        layer's ``expected_statistics``; a mapping gives each such layer a ``known`` mask (units
+        holding data) or ``None``. Not checked: the phases call it."""
         out = Statistics()
         for i, (prefix, layer) in enumerate(self._layer_prefixes):
-            own = layer.expected_statistics if i in means else layer.statistics
-            for name, value in _pulled_back(layer, own(states[i], weights)):
+            if i not in means:
+                own = layer.statistics(states[i], weights)
+            elif isinstance(means, Mapping) and means[i] is not None:
+                own = layer.expected_statistics(states[i], weights, known=means[i])
+            else:
+                own = layer.expected_statistics(states[i], weights)
+            for name, value in _pulled_back(layer, own):
                 out[prefix + name] = value
         for prefix, coupling, (a, b) in self._coupling_prefixes:
             for name, value in _pulled_back(coupling, coupling.statistics(states[a], states[b], weights)):

@@ -136,12 +136,20 @@ class GaussianLayer(UnitLayer):
             out["log_std"] = average(centred.square()) / variance
         return out
 
-    def expected_statistics(self, mean: Tensor, weights: Tensor | None = None) -> dict[str, Tensor]:
+    def expected_statistics(
+        self, mean: Tensor, weights: Tensor | None = None, known: Tensor | None = None
+    ) -> dict[str, Tensor]:
         """:meth:`statistics` averaged over independent Gaussians with this mean and the layer's
-        variances: ``E[(x - b)^2] / sigma^2 = (mean - b)^2 / sigma^2 + 1`` for ``log_std``."""
+        variances: ``E[(x - b)^2] / sigma^2 = (mean - b)^2 / sigma^2 + 1`` for ``log_std``, the ``+ 1``
+        only where ``known`` ``(B, n)`` (bool) is False when given (units holding data, not means)."""
         out = self.statistics(mean, weights)
         if self.learn_std:
-            out["log_std"] = out["log_std"] + 1.0
+            if known is None:  # the weights' total: they need not be normalised (enumeration's chunks)
+                variance_term = 1.0 if weights is None else weights.sum().to(mean.dtype)
+            else:
+                unknown = (~known).to(mean.dtype)
+                variance_term = unknown.mean(0) if weights is None else weights.to(mean.dtype) @ unknown
+            out["log_std"] = out["log_std"] + variance_term
         return out
 
     def base_parameters(self, data: Tensor | None = None) -> dict[str, Tensor]:

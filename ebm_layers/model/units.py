@@ -75,10 +75,13 @@ class UnitLayer(nn.Module):
         ``weights`` ``(B,)`` (summing to one) when given. Generic: autograd of ``energy``."""
         return autograd_statistics(self, lambda: self.energy(x.detach()), weights)
 
-    def expected_statistics(self, mean: Tensor, weights: Tensor | None = None) -> dict[str, Tensor]:
+    def expected_statistics(
+        self, mean: Tensor, weights: Tensor | None = None, known: Tensor | None = None
+    ) -> dict[str, Tensor]:
         """:meth:`statistics` averaged over the factorised distribution with this ``mean`` ``(B, n)``
-        (the layer's conditional, as mean field and exact enumeration give it): ``statistics(mean)``,
-        exact when ``-dU/dtheta`` is linear in ``x``; override otherwise."""
+        (the layer's conditional, as mean field and exact enumeration give it); ``known`` ``(B, n)``
+        bool marks units that hold states instead (observed values among missing ones). Default:
+        ``statistics(mean)``, exact when ``-dU/dtheta`` is linear in ``x``; override otherwise."""
         return self.statistics(mean, weights)
 
     def as_states(self, x: Tensor) -> Tensor:

@@ -177,9 +177,14 @@ class MeanField(nn.Module):
         if index is not None:
             raise ValueError("index is only used with DataParticles; MeanField needs no index")
         model = self.model
+        marginals = self(v, clamp, missing)
         given = {*model.observed, *(clamp or {})}
-        free = [i for i in range(len(model.layers)) if i not in given]
-        return model.statistics(self(v, clamp, missing), means=free)
+        means: dict[int, Tensor | None] = {i: None for i in range(len(model.layers)) if i not in given}
+        if missing is not None:  # layers with missing units: means there, data elsewhere
+            means.update(
+                {i: ~unknown for i, unknown in model.clamped(missing).items() if bool(unknown.any())}
+            )
+        return model.statistics(marginals, means=means)
 
     # -- the forward iteration -------------------------------------------------------------
 
