@@ -6,6 +6,7 @@ without re-importing torch (scripts, distributed ranks). The ground truth itself
 
 from __future__ import annotations
 
+import math
 import multiprocessing
 import os
 import runpy
@@ -169,3 +170,30 @@ def run_script(
             process.join()
             raise subprocess.TimeoutExpired(command, timeout, stdout.read_text(), stderr.read_text())
         return subprocess.CompletedProcess(command, process.exitcode, stdout.read_text(), stderr.read_text())
+
+
+# ---------------------------------------------------------------------------------------------
+# Monte Carlo comparisons of sampled states with an exact distribution.
+
+
+def state_frequencies(samples: Tensor, table: Tensor) -> Tensor:
+    """The share of the rows of ``samples`` ``(count, N)`` equal to each row of ``table`` ``(S, N)``
+    (distinct rows of 0/1 values): ``(S,)`` float64; ``AssertionError`` if a sample is not in it."""
+    powers = 2.0 ** torch.arange(table.shape[1], dtype=F64)
+    codes, known = samples.to(F64) @ powers, table.to(F64) @ powers
+    order = torch.argsort(known)
+    position = torch.searchsorted(known[order], codes).clamp(max=len(known) - 1)
+    assert torch.equal(known[order][position], codes), "a sample is not among the listed states"
+    return torch.bincount(order[position], minlength=len(table)).to(F64) / len(samples)
+
+
+def expected_total_variation(p: Tensor, count: int) -> float:
+    """Expected total variation between ``count`` exact draws from ``p`` and ``p`` itself:
+    ``sum sqrt(2 p (1 - p) / (pi count)) / 2`` (the mean absolute deviation of each share, normal
+    approximation; from memory)."""
+    p = p.to(F64)
+    return float(torch.sqrt(2 * p * (1 - p) / (math.pi * count)).sum() / 2)
+
+
+def total_variation(p: Tensor, q: Tensor) -> float:
+    return 0.5 * float((p.to(F64) - q.to(F64)).abs().sum())

@@ -145,3 +145,25 @@ def exact_log_marginal(model: el.EnergyModel, v: Tensor) -> Tensor:
     return torch.stack(
         [torch.logsumexp(-ref.energy[(ref.states[0] == row).all(1)], 0) - ref.log_z for row in v]
     )
+
+
+def layer_states(layer: el.UnitLayer) -> Tensor:
+    """Exact enumeration (mathematics): every state ``(S, n)`` float64 of a binary layer (every 0/1
+    vector) or a categorical one (one unit on in each group, groups independent), written out with
+    ``itertools`` rather than the layer's own ``states``."""
+    if isinstance(layer, el.CategoricalLayer):
+        one_hot = torch.eye(layer.categories, dtype=torch.float64)
+        rows = itertools.product(range(layer.categories), repeat=layer.groups)
+        return torch.stack([torch.cat([one_hot[k] for k in row]) for row in rows])
+    if isinstance(layer, el.BinaryLayer):
+        return torch.tensor(list(itertools.product((0.0, 1.0), repeat=layer.size)), dtype=torch.float64)
+    raise TypeError(f"no list of states for {type(layer).__name__}")
+
+
+def every_joint_state(model: el.EnergyModel) -> list[Tensor]:
+    """Exact enumeration (mathematics): every joint state of a model of binary and categorical
+    layers, one ``(S, n_i)`` float64 tensor per layer (S the product of the layers' state counts;
+    layer 0 varies slowest)."""
+    tables = [layer_states(layer) for layer in model.layers]
+    index = torch.tensor(list(itertools.product(*(range(len(t)) for t in tables))))
+    return [table[index[:, i]] for i, table in enumerate(tables)]

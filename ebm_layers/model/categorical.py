@@ -98,7 +98,7 @@ class CategoricalLayer(UnitLayer):
         """``{"bias": mean of x}`` (weighted when ``weights`` is given)."""
         return {"bias": x.mean(0) if weights is None else weights.to(x.dtype) @ x}
 
-    def as_states(self, x: Tensor) -> Tensor:
+    def as_states(self, x: Tensor, name: str = "x") -> Tensor:
         """Category indices (``(B, groups)`` integers, or ``(B,)`` when ``groups == 1``) made one-hot
         ``(B, size)`` in the layer's dtype; anything else returned as it is."""
         if not isinstance(x, Tensor) or x.is_floating_point() or x.is_complex() or x.dtype == torch.bool:
@@ -109,7 +109,7 @@ class CategoricalLayer(UnitLayer):
             return x
         if x.numel() and (int(x.min()) < 0 or int(x.max()) >= self.categories):
             raise ValueError(
-                f"category indices must lie in 0..{self.categories - 1}, got values from "
+                f"{name}: category indices must lie in 0..{self.categories - 1}, got values from "
                 f"{int(x.min())} to {int(x.max())}"
             )
         out = torch.zeros(x.shape[0], self.groups, self.categories, dtype=self.bias.dtype)

@@ -157,7 +157,7 @@ class EnergyModel(nn.Module):
         if convert and not isinstance(x, Tensor) and hasattr(x, "__array__"):
             x = torch.as_tensor(x)
         if isinstance(x, Tensor):
-            x = unit.as_states(x)
+            x = unit.as_states(x, name)
         check = check_data if convert else check_batch
         x = check(name, x, unit.size, dtype=self.dtype, batch=batch, support=unit.support)
         unit.check_states(name, x)

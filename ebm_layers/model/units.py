@@ -84,8 +84,9 @@ class UnitLayer(nn.Module):
         ``statistics(mean)``, exact when ``-dU/dtheta`` is linear in ``x``; override otherwise."""
         return self.statistics(mean, weights)
 
-    def as_states(self, x: Tensor) -> Tensor:
-        """Data in the layer's own encoding as ``(B, n)`` states (default: ``x`` itself)."""
+    def as_states(self, x: Tensor, name: str = "x") -> Tensor:
+        """Data in the layer's own encoding as ``(B, n)`` states (default: ``x`` itself); errors name
+        the data ``name``."""
         return x
 
     def check_states(self, name: str, x: Tensor) -> None:

@@ -208,10 +208,10 @@ class TwoPhaseObjective(nn.Module):
         model = self.model
         parameters = dict(model.named_parameters())
         self.check_parameters(parameters)
-        if not isinstance(v, Tensor):  # one tensor per observed layer: joined once for both phases
+        if not isinstance(v, Tensor) or not v.is_floating_point():
+            # One tensor per observed layer (joined once for both phases), binary data kept as bool
+            # or uint8, class labels: checked and converted here.
             v = model.checked("v", v)
-        elif not (v.is_floating_point() or v.is_complex()):
-            v = v.to(model.dtype)  # binary data kept as bool or uint8
         data = self.positive.statistics(v, **kwargs)
         fantasy = self.negative.statistics(v, **kwargs)
         difference = data - fantasy
