@@ -209,6 +209,7 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
             "scaling efficiency",
             marks=pytest.mark.slow,
         ),
+        ("open_data.py", ["--quick"], "target 96% for the label-layer model"),
         pytest.param(
             "digits_features.py",
             "--splits 0 --epochs 1 --pretrain-epochs 1 --finetune-epochs 1 --ais-betas 10 --compare".split(),

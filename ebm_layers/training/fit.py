@@ -138,7 +138,7 @@ def fit(
     ``benchmarks/defaults.py`` (small RBMs) and ``benchmarks/digits_features.py`` (deep chains):
     mean field started from a bottom-up pass for the data phase; 100 persistent chains advanced one
     sweep per batch for the model phase; batches of 10; Adam at learning rate 0.01 (0.001 for a
-    deep model, three layers or more), decayed linearly towards zero over ``epochs`` (see
+    deep model, two hidden layers or more), decayed linearly towards zero over ``epochs`` (see
     :func:`default_optimizer`). A small RBM (at most ``SMALL_RBM_VISIBLE`` = 32 visible and
     ``SMALL_RBM_HIDDEN`` = 100 hidden units) starts at 0.03 instead, and its 100 chains take two
     sweeps per batch with replica exchange against one hotter copy each (``mixing_aid="auto"``).
@@ -523,7 +523,7 @@ def default_optimizer(
 ) -> tuple[torch.optim.Optimizer, torch.optim.lr_scheduler.LRScheduler]:
     """``fit``'s default optimizer and scheduler: Adam at ``learning_rate`` (default
     ``SMALL_RBM_LEARNING_RATE`` for a small RBM, see :func:`fit`, ``DEFAULT_DEEP_LEARNING_RATE``
-    for three layers or more, else ``DEFAULT_LEARNING_RATE``), decayed linearly towards zero over
+    for two hidden layers or more, else ``DEFAULT_LEARNING_RATE``), decayed linearly towards zero over
     ``epochs`` (epoch ``e`` runs at ``1 - e / epochs`` of it)."""
     learning_rate = (
         _default_learning_rate(model)
@@ -541,7 +541,8 @@ def _default_learning_rate(model: EnergyModel) -> float:
     """The starting rate for ``model``: see :func:`default_optimizer`."""
     if _is_small_rbm(model):
         return SMALL_RBM_LEARNING_RATE
-    return DEFAULT_DEEP_LEARNING_RATE if len(model.layers) > 2 else DEFAULT_LEARNING_RATE
+    hidden = len(model.layers) - len(model.observed)  # a label layer does not make a model deep
+    return DEFAULT_DEEP_LEARNING_RATE if hidden > 1 else DEFAULT_LEARNING_RATE
 
 
 def save_checkpoint(state: dict, path: str | os.PathLike) -> None:
