@@ -444,6 +444,18 @@ def table(header: list[str], rows: list[list[str]]) -> None:
     print(flush=True)
 
 
+def sweep_table(rows: list[dict], seconds: str) -> None:
+    """The hybrid weight sweep: validation accuracy and conditional log-likelihood per weight."""
+    table(
+        ["weight", "validation accuracy", "validation log p(y|x)", "s"],
+        [
+            [f"{r['weight']:g}", f"{100 * r['validation accuracy']:.1f}", f"{r['validation log p(y|x)']:.3f}"]
+            + [format(r["s"], seconds)]
+            for r in rows
+        ],
+    )
+
+
 def percent_table(title: str, rows: list[dict], columns: list[str], extra: dict[str, str] | None = None):
     """Accuracies (and ``extra`` columns already formatted per row) per split, then mean ± std."""
     print(title)
@@ -520,14 +532,7 @@ def main() -> None:
         "B. 8x8 digits binarised (> 7), label layer: weight sweep on split 0's validation part "
         f"({settings.hybrid_epochs} epochs, {settings.digits_hidden} hidden)"
     )
-    table(
-        ["weight", "validation accuracy", "validation log p(y|x)", "s"],
-        [
-            [f"{r['weight']:g}", f"{100 * r['validation accuracy']:.1f}", f"{r['validation log p(y|x)']:.3f}"]
-            + [f"{r['s']:.0f}"]
-            for r in sweep_rows["digits"]
-        ],
-    )
+    sweep_table(sweep_rows["digits"], ".0f")
     print(f"chosen weight: {weight['digits']:g}")
     print(
         f"B. label-layer models 64-{settings.digits_hidden}-10 classified by free energy: generative "
@@ -567,14 +572,7 @@ def main() -> None:
         f"C. breast cancer (30 measurements standardised, 2 classes): weight sweep on split 0's validation "
         f"part (30-{settings.cancer_hidden}-2, {settings.cancer_epochs} epochs)"
     )
-    table(
-        ["weight", "validation accuracy", "validation log p(y|x)", "s"],
-        [
-            [f"{r['weight']:g}", f"{100 * r['validation accuracy']:.1f}", f"{r['validation log p(y|x)']:.3f}"]
-            + [f"{r['s']:.1f}"]
-            for r in sweep_rows["cancer"]
-        ],
-    )
+    sweep_table(sweep_rows["cancer"], ".1f")
     print(f"chosen weight: {weight['cancer']:g}")
     print(
         f"C. logistic regression on the measurements and on a Gaussian RBM 30-{settings.cancer_features}'s "
