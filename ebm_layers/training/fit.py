@@ -44,7 +44,7 @@ logger = logging.getLogger(__name__)
 DEFAULT_EPOCHS = 100
 DEFAULT_BATCH_SIZE = 10
 DEFAULT_LEARNING_RATE = 0.01
-# Joint training of a deep model (three layers or more), measured on pretrained 64-100-50 chains by
+# Joint training of a deep model (two hidden layers or more), measured on pretrained 64-100-50 chains by
 # benchmarks/digits_features.py: 0.01 undoes the pretraining and leaves the top layer unused.
 DEFAULT_DEEP_LEARNING_RATE = 0.001
 DEFAULT_NUM_PARTICLES = 100
@@ -143,8 +143,9 @@ def fit(
     ``SMALL_RBM_HIDDEN`` = 100 hidden units) starts at 0.03 instead, and its 100 chains take two
     sweeps per batch with replica exchange against one hotter copy each (``mixing_aid="auto"``).
     With tensor data, an untrained model's
-    (:meth:`EnergyModel.untrained`: every weight as built) all-zero visible biases are first set
-    to the log-odds of the data's base rates (:meth:`EnergyModel.init_visible_bias_from`), and an
+    (:meth:`EnergyModel.untrained`: every weight as built) all-zero observed biases are first set
+    from the data (binary units: the log-odds of the base rates; Gaussian: the mean; categorical:
+    the log frequencies; :meth:`EnergyModel.init_visible_bias_from`), and an
     untrained deep chain (three layers or more, as built by :func:`dbm`) is first pretrained
     greedily from RBMs (:func:`pretrain`, ``DEFAULT_PRETRAIN_EPOCHS`` passes per RBM, with a
     progress bar and history of their own, ``FitResult.pretraining``), then trained jointly for
