@@ -37,6 +37,7 @@ from .evaluation.partition import (
 from .evaluation.prediction import conditional_log_likelihood, predict
 from .features import ConcatenatedLayers, FeatureExtractor, feedforward_network
 from .model.categorical import CategoricalLayer
+from .model.convolution import Conv2dCoupling, share_bias_by_channel
 from .model.couplings import Coupling, DenseCoupling, LateralCoupling
 from .model.energy_model import EnergyModel, dbm, rbm
 from .model.gaussian import GaussianLayer
@@ -60,6 +61,7 @@ __all__ = [
     "CategoricalLayer",
     "ConcatenatedLayers",
     "ContrastiveDivergence",
+    "Conv2dCoupling",
     "Coupling",
     "DataParticles",
     "DenseCoupling",
@@ -123,6 +125,7 @@ __all__ = [
     "save_checkpoint",
     "save_image_grid",
     "save_training_plot",
+    "share_bias_by_channel",
     "weight_decay_groups",
     "wrap_distributed",
 ]

@@ -625,7 +625,7 @@ def _check_modules(layers, couplings):
 def _check_coupling_shapes(k: int, coupling: Coupling, n_a: int, n_b: int) -> None:
     """A coupling must send inputs of the right width both ways: probed with one zero state."""
     weight = getattr(coupling, "weight", None)
-    if isinstance(weight, Tensor) and tuple(weight.shape) != (n_a, n_b):
+    if isinstance(weight, Tensor) and weight.ndim == 2 and tuple(weight.shape) != (n_a, n_b):
         raise ValueError(
             f"couplings[{k}].weight has shape {tuple(weight.shape)} but layers "
             f"{coupling.a} and {coupling.b} have sizes {(n_a, n_b)}"
