@@ -210,6 +210,7 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
             marks=pytest.mark.slow,
         ),
         ("open_data.py", ["--quick"], "target 96% for the label-layer model"),
+        ("convolution.py", "--size 12 --maps 2 --kernel 3 --particles 4 --repeats 1".split(), "ratio"),
         pytest.param(
             "digits_features.py",
             "--splits 0 --epochs 1 --pretrain-epochs 1 --finetune-epochs 1 --ais-betas 10 --compare".split(),
