@@ -25,6 +25,7 @@ __all__ = [
     "MARKING_SHARES",
     "MARKING_TYPES",
     "grey_parts_markings",
+    "marking_sheets",
     "marking_templates",
     "parts_markings",
 ]
@@ -241,6 +242,56 @@ def grey_parts_markings(
     contrast = low + (high - low) * torch.rand(num_examples, 1, generator=generator, dtype=dtype)
     sensor = torch.randn(ink.shape, generator=generator, dtype=dtype) * noise
     return ink * contrast + sensor, labels
+
+
+def marking_sheets(
+    num_examples: int,
+    *,
+    size: int = 48,
+    markings: int = 3,
+    generator: torch.Generator | None = None,
+    flip: float = FLIP / 3,
+    dtype: torch.dtype = torch.float32,
+) -> tuple[Tensor, Tensor, Tensor]:
+    """Draw ``num_examples`` inspection sheets of ``size`` x ``size`` binarised pixels, each carrying
+    ``markings`` stamped markings at random places (invented data, see the module docstring).
+
+    Every marking is a clean 12x12 scan of :func:`parts_markings` (its type, shift, thickness and
+    missing segments; no flips) pasted with its top-left corner uniform over the sheet (overlaps ink
+    their union); then every pixel of the sheet flips with probability ``flip``. Same generator
+    state, same data.
+
+    Returns:
+        ``(sheets, types, corners)``: ``(num_examples, size * size)`` 0/1 sheets (rows top first),
+        ``(num_examples, markings)`` int64 type indices into ``MARKING_TYPES`` and
+        ``(num_examples, markings, 2)`` int64 (row, column) of each marking's top-left pixel.
+
+    Examples::
+
+        >>> sheets, types, corners = marking_sheets(2, generator=torch.Generator().manual_seed(0))
+        >>> sheets.shape, types.shape, corners.shape
+        (torch.Size([2, 2304]), torch.Size([2, 3]), torch.Size([2, 3, 2]))
+    """
+    num_examples = check_size("num_examples", num_examples)
+    markings = check_size("markings", markings)
+    side = IMAGE_SHAPE[0]
+    size = check_size("size", size)
+    if size < side:
+        raise ValueError(f"size must be at least the markings' {side} pixels, got {size}")
+    _check_probability("flip", flip)
+    count = num_examples * markings
+    labels, lines, shift, half_width, generator = _draw_markings(count, generator, MISSING, dtype)
+    scans = _ink(lines, shift, half_width).view(num_examples, markings, side, side)
+    corners = torch.randint(0, size - side + 1, (num_examples, markings, 2), generator=generator)
+    sheets = torch.zeros(num_examples, size, size, dtype=dtype)
+    for example in range(num_examples):
+        for k in range(markings):
+            row, column = (int(c) for c in corners[example, k])
+            window = sheets[example, row : row + side, column : column + side]
+            torch.maximum(window, scans[example, k], out=window)
+    flips = torch.rand(sheets.shape, generator=generator, dtype=dtype) < flip
+    sheets = torch.where(flips, 1.0 - sheets, sheets)
+    return sheets.flatten(1), labels.view(num_examples, markings), corners
 
 
 def _check_probability(name: str, value: object, top: float = 1.0) -> None:

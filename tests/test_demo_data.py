@@ -30,6 +30,7 @@ from ebm_layers.datasets import (
     MARKING_SHARES,
     MARKING_TYPES,
     grey_parts_markings,
+    marking_sheets,
     marking_templates,
     parts_markings,
 )
@@ -127,6 +128,28 @@ def test_grey_scans_are_the_binary_drawings_with_soft_ink_contrast_and_sensor_no
     assert float((named == labels).double().mean()) > 0.85
     with pytest.raises(ValueError, match="noise must be a finite number >= 0"):
         grey_parts_markings(5, noise=-1.0)
+
+
+def test_marking_sheets_place_each_marking_in_its_window():
+    sheets, types, corners = marking_sheets(300, size=30, markings=1, flip=0.0, generator=seeded(9))
+    again = marking_sheets(300, size=30, markings=1, flip=0.0, generator=seeded(9))
+    assert torch.equal(sheets, again[0]) and torch.equal(types, again[1]) and torch.equal(corners, again[2])
+    assert sheets.shape == (300, 900) and types.shape == (300, 1) and corners.shape == (300, 1, 2)
+    images = sheets.view(300, 30, 30)
+    windows = torch.stack(
+        [images[i, r : r + 12, c : c + 12] for i, (r, c) in enumerate(corners[:, 0].tolist())]
+    )
+    # All the ink lies in the marking's window, and the window is a scan of the marking's type
+    # (the nearest template names about 95% of scans, see marking_templates).
+    assert torch.equal(windows.sum((1, 2)), images.sum((1, 2))) and bool((windows.sum((1, 2)) > 0).all())
+    named = el.nearest_template(marking_templates())(windows.reshape(300, 144))
+    assert float((named == types[:, 0]).double().mean()) > 0.85
+    # Several markings and the flips: about markings times a scan's ink plus flips of the paper.
+    many, _, _ = marking_sheets(200, generator=seeded(10))
+    one, _, _ = marking_sheets(200, markings=1, flip=0.0, generator=seeded(10))
+    assert 2.0 < float(many.sum(1).mean()) / float(one.sum(1).mean()) < 4.5
+    with pytest.raises(ValueError, match="size must be at least"):
+        marking_sheets(2, size=10)
 
 
 # -- mode occupancy -------------------------------------------------------------------------------
