@@ -220,14 +220,10 @@ def _mean_field(model: EnergyModel, v: Tensor) -> list[Tensor]:
     return MeanField(model, tol=tol, max_iter=MEAN_FIELD_MAX_ITER)(v)
 
 
-def _hidden(model: EnergyModel) -> list[int]:
-    return [i for i in range(len(model.layers)) if i not in model.observed]
-
-
 def _entropy(model: EnergyModel, marginals: Sequence[Tensor]) -> Tensor:
     """Entropy ``(B,)`` of the factorised ``q`` over the hidden layers with means ``marginals``: the
     sum of each hidden layer's ``entropy``."""
-    return sum(model.layers[i].entropy(marginals[i]) for i in _hidden(model))
+    return sum(model.layers[i].entropy(marginals[i]) for i in model.hidden)
 
 
 def _expected_energy(model: EnergyModel, marginals: Sequence[Tensor]) -> Tensor:
@@ -239,7 +235,7 @@ def _expected_energy(model: EnergyModel, marginals: Sequence[Tensor]) -> Tensor:
     (its energy at the mean for units whose term is linear, such as binary ones).
     """
     total = sum(model.layers[i].energy(marginals[i]) for i in model.observed)
-    for i in _hidden(model):
+    for i in model.hidden:
         total = total + model.layers[i].expected_energy(marginals[i])
     for coupling, (a, b) in zip(model.couplings, model.edges):
         total = total + coupling.energy(marginals[a], marginals[b])

@@ -9,6 +9,7 @@ from torch import Tensor
 
 from .._checks import check_index, check_model
 from ..model.energy_model import EnergyModel
+from ..model.units import resting_mean
 from ..phases.mean_field import MeanField
 
 __all__ = ["PREDICT_EXACT_STATES", "check_discriminative", "conditional_log_likelihood", "predict"]
@@ -44,8 +45,8 @@ def predict(model: EnergyModel, given: object, layer: int, *, method: str = "aut
     method = _method(model, layer, method)
     with torch.no_grad():
         if method == "exact":
-            probabilities = _log_conditionals(model, v, layer).softmax(-1)
-            return probabilities @ model.layers[layer].states(0, model.layers[layer].num_states)
+            scores, states = _log_conditionals(model, v, layer)
+            return scores.softmax(-1) @ states
         return MeanField(model)(v, missing=missing)[layer].detach()
 
 
@@ -56,9 +57,13 @@ def conditional_log_likelihood(model: EnergyModel, v: object, layer: int) -> Ten
     :class:`TwoPhaseObjective`). Needs what :func:`predict`'s ``"exact"`` needs."""
     check_model(model)
     layer = check_discriminative(model, layer)
-    v = model.checked("v", v)
-    scores = _log_conditionals(model, v, layer)
-    states = model.layers[layer].states(0, model.layers[layer].num_states)
+    return log_conditional(model, model.checked("v", v), layer)
+
+
+def log_conditional(model: EnergyModel, v: Tensor, layer: int) -> Tensor:
+    """:func:`conditional_log_likelihood` of a checked, joined observation ``v`` and a checked
+    ``layer``, without the checks (the objective calls it on every step)."""
+    scores, states = _log_conditionals(model, v, layer)
     observed = model.clamped(v)[layer]
     # Each observed state's row in the list of states (one-hot or binary data: an exact match).
     match = (observed[:, None, :] - states[None]).abs().sum(-1) < 1e-6
@@ -75,13 +80,14 @@ def check_discriminative(model: EnergyModel, layer: object) -> int:
     return layer
 
 
-def _log_conditionals(model: EnergyModel, v: Tensor, layer: int) -> Tensor:
-    """``-F(v with layer set to y_k)`` ``(B, K)`` for every state ``y_k`` of ``layer``."""
+def _log_conditionals(model: EnergyModel, v: Tensor, layer: int) -> tuple[Tensor, Tensor]:
+    """``-F(v with layer set to y_k)`` ``(B, K)`` for every state ``y_k`` of ``layer``, and the states
+    ``(K, n_layer)``."""
     states = model.layers[layer].states(0, model.layers[layer].num_states).to(model.dtype)
     count, batch = states.shape[0], v.shape[0]
     given = {i: x.repeat_interleave(count, dim=0) for i, x in model.clamped(v).items() if i != layer}
     given[layer] = states.repeat(batch, 1)
-    return -model.summed_free_energy(given).view(batch, count)
+    return -model.summed_free_energy(given).view(batch, count), states
 
 
 def _method(model: EnergyModel, layer: int, method: str) -> str:
@@ -133,11 +139,8 @@ def _completed(model: EnergyModel, given: object, layer: int) -> tuple[Tensor, T
             f"given must be a dict or tuple of the observed layers {others}, got {type(given).__name__}"
         )
     first = model.checked(f"given[{others[0]}]", parts[others[0]], others[0], convert=True)
-    with torch.no_grad():
-        zero = torch.zeros(1, model.sizes[layer], dtype=model.dtype)
-        parts[layer] = model.layers[layer].mean(zero).expand(first.shape[0], -1)
+    parts[layer] = resting_mean(model.layers[layer], first.shape[0], model.dtype)
     v = model.checked("given", parts, convert=True)
     missing = torch.zeros(v.shape, dtype=torch.bool)
-    start = sum(model.sizes[i] for i in model.observed if i < layer)
-    missing[:, start : start + model.sizes[layer]] = True
+    model.clamped(missing)[layer].fill_(True)  # a view of the layer's columns
     return v, missing

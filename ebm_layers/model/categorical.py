@@ -6,6 +6,7 @@ import torch
 from torch import Tensor, nn
 
 from .._checks import check_size
+from . import functional as F
 from .units import UnitLayer
 
 __all__ = ["CategoricalLayer"]
@@ -96,7 +97,7 @@ class CategoricalLayer(UnitLayer):
 
     def statistics(self, x: Tensor, weights: Tensor | None = None) -> dict[str, Tensor]:
         """``{"bias": mean of x}`` (weighted when ``weights`` is given)."""
-        return {"bias": x.mean(0) if weights is None else weights.to(x.dtype) @ x}
+        return {"bias": F.batch_mean(x, weights)}
 
     def as_states(self, x: Tensor, name: str = "x") -> Tensor:
         """Category indices (``(B, groups)`` integers, or ``(B,)`` when ``groups == 1``) made one-hot

@@ -72,6 +72,7 @@ class EnergyModel(nn.Module):
         super().__init__()
         layers, couplings = _check_modules(layers, couplings)
         self.observed: tuple[int, ...] = _check_observed(observed, len(layers))
+        self.hidden: tuple[int, ...] = tuple(i for i in range(len(layers)) if i not in self.observed)
         # Where each observed layer sits in a joined observation (B, sum n_i).
         bounds = [0]
         for i in self.observed:
@@ -491,12 +492,20 @@ class EnergyModel(nn.Module):
         given through its free tensor (the parametrizations' ``right_inverse``)."""
         out = {}
         for i, layer in enumerate(self.layers):
-            for name, value in layer.base_parameters(None if data is None else data.get(i)).items():
-                if name not in layer._parameters and parametrize.is_parametrized(layer, name):
-                    for parametrization in reversed(layer.parametrizations[name]):
-                        value = parametrization.right_inverse(value)
-                    name = f"parametrizations.{name}.original"
-                out[f"layers.{i}.{name}"] = value
+            out.update(self.layer_values(i, layer.base_parameters(None if data is None else data.get(i))))
+        return out
+
+    def layer_values(self, i: int, values: Mapping[str, Tensor]) -> dict[str, Tensor]:
+        """Values ``{name: tensor}`` of layer ``i``'s tensors keyed like ``named_parameters()``: a
+        parametrized tensor (tied copies of a bias) is given through its free tensor (the
+        parametrizations' ``right_inverse``), as :class:`substituted` expects."""
+        layer, out = self.layers[i], {}
+        for name, value in values.items():
+            if name not in layer._parameters and parametrize.is_parametrized(layer, name):
+                for parametrization in reversed(layer.parametrizations[name]):
+                    value = parametrization.right_inverse(value)
+                name = f"parametrizations.{name}.original"
+            out[f"layers.{i}.{name}"] = value
         return out
 
     @torch.no_grad()
@@ -520,25 +529,32 @@ class EnergyModel(nn.Module):
         data = self.checked("data", data)
         pseudocount = check_positive_real("pseudocount", pseudocount)
         for i, x in self.clamped(data).items():
-            layer = self.layers[i]
-            if isinstance(layer, BinaryLayer):
-                layer.bias.copy_(F.base_rate_logits(x, pseudocount))
-            else:
-                layer.bias.copy_(layer.base_parameters(x)["bias"])
+            self.layers[i].bias.copy_(bias_from_data(self.layers[i], x, pseudocount))
 
-    def is_binary_chain(self) -> bool:
-        """Whether the model is what :func:`dbm` builds: binary layers, layer 0 observed alone, and
-        unmasked dense couplings ``(k, k + 1)`` in order (the feed-forward network needs it)."""
+    def is_binary_chain(self, visible: tuple[type[UnitLayer], ...] = (BinaryLayer,)) -> bool:
+        """Whether the model is what :func:`dbm` builds: binary layers (layer 0 of one of the
+        ``visible`` types), layer 0 observed alone, and unmasked dense couplings ``(k, k + 1)`` in
+        order (the feed-forward network and pretraining need it)."""
         return (
             self.observed == (0,)
             and is_chain(len(self.layers), self.edges)
-            and all(isinstance(layer, BinaryLayer) for layer in self.layers)
+            and isinstance(self.layers[0], visible)
+            and all(isinstance(layer, BinaryLayer) for layer in self.layers[1:])
             and all(isinstance(c, DenseCoupling) and c.mask is None for c in self.couplings)
         )
 
     def extra_repr(self) -> str:
         observed = "" if self.observed == (0,) else f", observed={list(self.observed)}"
         return f"sizes={list(self.sizes)}, edges={list(self.edges)}{observed}"
+
+
+def bias_from_data(layer: UnitLayer, x: Tensor, pseudocount: float = 1.0) -> Tensor:
+    """A bias for ``layer`` that reproduces the data ``x`` ``(N, n)`` with no input: binary units at
+    the log-odds of the smoothed base rates (``pseudocount``), other types as their
+    ``base_parameters(x)`` give it (Gaussian: the mean; categorical: the log frequencies)."""
+    if isinstance(layer, BinaryLayer):
+        return F.base_rate_logits(x, pseudocount).to(layer.bias.dtype)
+    return layer.base_parameters(x)["bias"]
 
 
 def _pulled_back(module: nn.Module, statistics: Mapping[str, Tensor]) -> Iterable[tuple[str, Tensor]]:

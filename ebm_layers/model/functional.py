@@ -11,7 +11,12 @@ from concurrent.futures import ThreadPoolExecutor
 import torch
 from torch import Tensor
 
-__all__ = ["base_rates", "base_rate_logits", "sample_bernoulli", "Uniforms"]
+__all__ = ["base_rates", "base_rate_logits", "batch_mean", "sample_bernoulli", "Uniforms"]
+
+
+def batch_mean(x: Tensor, weights: Tensor | None = None) -> Tensor:
+    """The average ``(n,)`` of the rows of ``x`` ``(B, n)``, weighted by ``weights`` ``(B,)`` when given."""
+    return x.mean(0) if weights is None else weights.to(x.dtype) @ x
 
 
 def base_rates(data: Tensor, pseudocount: float = 0.0) -> Tensor:

@@ -8,6 +8,7 @@ import torch
 from torch import Tensor, nn
 
 from .._checks import check_positive_real, check_size
+from . import functional as F
 from .units import UnitLayer
 
 __all__ = ["GaussianLayer"]
@@ -127,13 +128,9 @@ class GaussianLayer(UnitLayer):
         (x - b)^2 / sigma^2}`` (the averages of ``-dU/dtheta``)."""
         variance = self._variance().detach()
         centred = x - self.bias.detach()
-
-        def average(values: Tensor) -> Tensor:
-            return values.mean(0) if weights is None else weights.to(values.dtype) @ values
-
-        out = {"bias": average(centred) / variance}
+        out = {"bias": F.batch_mean(centred, weights) / variance}
         if self.learn_std:
-            out["log_std"] = average(centred.square()) / variance
+            out["log_std"] = F.batch_mean(centred.square(), weights) / variance
         return out
 
     def expected_statistics(
@@ -147,8 +144,7 @@ class GaussianLayer(UnitLayer):
             if known is None:  # the weights' total: they need not be normalised (enumeration's chunks)
                 variance_term = 1.0 if weights is None else weights.sum().to(mean.dtype)
             else:
-                unknown = (~known).to(mean.dtype)
-                variance_term = unknown.mean(0) if weights is None else weights.to(mean.dtype) @ unknown
+                variance_term = F.batch_mean((~known).to(mean.dtype), weights)
             out["log_std"] = out["log_std"] + variance_term
         return out
 
@@ -160,12 +156,6 @@ class GaussianLayer(UnitLayer):
         if self.learn_std:
             out["log_std"] = self.log_std.detach().clone()
         return out
-
-    def initial_states(self, batch: int, generator: torch.Generator, mean: Tensor | None = None) -> Tensor:
-        """A draw from the layer alone (``N(b, sigma^2)``), or the given ``mean`` itself."""
-        if mean is not None:
-            return mean.clone()
-        return self.sample(torch.zeros(batch, self.size, dtype=self.bias.dtype), generator)
 
     def extra_repr(self) -> str:
         std = "learned" if self.learn_std else f"{self.initial_std:g}"

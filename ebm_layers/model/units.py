@@ -12,7 +12,7 @@ from .._checks import check_size
 from . import functional as F
 from .parameters import autograd_statistics
 
-__all__ = ["RATE_CLIP", "BinaryLayer", "UnitLayer"]
+__all__ = ["RATE_CLIP", "BinaryLayer", "UnitLayer", "resting_mean"]
 
 # Base rates of binary data are clipped to [RATE_CLIP, 1 - RATE_CLIP] for an annealing base model.
 RATE_CLIP = 1e-3
@@ -119,6 +119,13 @@ class UnitLayer(nn.Module):
         return self.sample(torch.zeros(batch, self.size, dtype=dtype), generator)
 
 
+@torch.no_grad()
+def resting_mean(layer: UnitLayer, batch: int, dtype: torch.dtype) -> Tensor:
+    """The layer's mean under zero input, ``(batch, n)`` (an expanded view, detached): where mean
+    field starts a layer, and a valid stand-in for values not known yet."""
+    return layer.mean(torch.zeros(1, layer.size, dtype=dtype)).expand(batch, -1)
+
+
 class BinaryLayer(UnitLayer):
     r"""A layer of ``size`` binary units ``x`` in {0, 1} with energy term :math:`-b \cdot x`.
 
@@ -181,7 +188,7 @@ class BinaryLayer(UnitLayer):
 
     def statistics(self, x: Tensor, weights: Tensor | None = None) -> dict[str, Tensor]:
         """``{"bias": mean of x}`` (weighted when ``weights`` is given)."""
-        return {"bias": x.mean(0) if weights is None else weights.to(x.dtype) @ x}
+        return {"bias": F.batch_mean(x, weights)}
 
     def base_parameters(self, data: Tensor | None = None) -> dict[str, Tensor]:
         """Zero bias (every unit on with probability 1/2), or the log-odds of ``data``'s base rates

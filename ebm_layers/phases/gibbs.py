@@ -346,8 +346,7 @@ class DataParticles(nn.Module):
         self.model = model
         self.generator = resolve_generator(generator)
         track_generator_state(self)
-        self.hidden = [i for i in range(len(model.layers)) if i not in model.observed]
-        for i in self.hidden:
+        for i in model.hidden:
             layer = model.layers[i]
             self.register_buffer(
                 f"states_{i}", _stored(layer, layer.initial_states(self.num_examples, self.generator))
@@ -362,7 +361,7 @@ class DataParticles(nn.Module):
         v = model.checked("v", v)
         index = check_example_index("index", index, self.num_examples, v.shape[0])
         given = model.clamped(v)
-        stored = {i: getattr(self, f"states_{i}") for i in self.hidden}
+        stored = {i: getattr(self, f"states_{i}") for i in model.hidden}
         states = [
             given[i] if i in given else stored[i][index].to(model.dtype) for i in range(len(model.layers))
         ]

@@ -15,7 +15,7 @@ from ..model.energy_model import EnergyModel
 from ..model.graph import UpdateSchedule
 from ..model.parameters import substituted
 from ..model.statistics import Statistics
-from ..model.units import BinaryLayer, UnitLayer
+from ..model.units import BinaryLayer, UnitLayer, resting_mean
 
 __all__ = ["MeanField"]
 
@@ -178,8 +178,7 @@ class MeanField(nn.Module):
             raise ValueError("index is only used with DataParticles; MeanField needs no index")
         model = self.model
         marginals = self(v, clamp, missing)
-        given = {*model.observed, *(clamp or {})}
-        means: dict[int, Tensor | None] = {i: None for i in range(len(model.layers)) if i not in given}
+        means: dict[int, Tensor | None] = {i: None for i in model.hidden if i not in (clamp or {})}
         if missing is not None:  # layers with missing units: means there, data elsewhere
             means.update(
                 {i: ~unknown for i, unknown in model.clamped(missing).items() if bool(unknown.any())}
@@ -207,8 +206,7 @@ class MeanField(nn.Module):
             elif isinstance(model.layers[i], BinaryLayer):
                 start = torch.full((problem.batch, model.sizes[i]), self.init, dtype=model.dtype)
             else:
-                zero = torch.zeros(1, model.sizes[i], dtype=model.dtype)
-                start = model.layers[i].mean(zero).expand(problem.batch, -1)
+                start = resting_mean(model.layers[i], problem.batch, model.dtype)
             observed = problem.observed_units(i)
             marginals[i] = start if observed is None else torch.where(*observed, start)
         return marginals
@@ -392,9 +390,9 @@ class MeanField(nn.Module):
                     )
                 # Unknown values may be anything, NaN included: each layer's mean under zero input
                 # stands in for them until inferred (it is a valid value of every unit type).
-                with torch.no_grad():
-                    zero = {i: torch.zeros(1, model.sizes[i], dtype=model.dtype) for i in model.observed}
-                    fill = torch.cat([model.layers[i].mean(zero[i]) for i in model.observed], dim=1)
+                fill = torch.cat(
+                    [resting_mean(model.layers[i], 1, model.dtype) for i in model.observed], dim=1
+                )
                 v = torch.where(missing, fill.to(v.dtype) if v.is_floating_point() else fill, v)
         v = model.checked("v", v)
         clamped, observed = model.clamped(v), {}

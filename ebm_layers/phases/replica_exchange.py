@@ -5,14 +5,11 @@ from __future__ import annotations
 
 import torch
 from torch import Tensor
-from torch.nn.utils import parametrize
 
 from .._buffers import buffer_family, register_buffer_family, set_buffer_family
 from .._checks import check_size
-from ..model import functional as F
-from ..model.energy_model import EnergyModel
+from ..model.energy_model import EnergyModel, bias_from_data
 from ..model.parameters import substituted
-from ..model.units import BinaryLayer
 from .gibbs import PersistentSampler, gibbs_sweep
 
 __all__ = ["ReplicaExchangeSampler"]
@@ -76,13 +73,8 @@ class ReplicaExchangeSampler(PersistentSampler):
                     f"got {betas.tolist()}"
                 )
         base = torch.zeros(model.sizes[0], dtype=model.dtype)
-        visible = model.layers[0]
-        if data is not None and 0 in model.observed:
-            data = model.clamped(model.checked("data", data))[0]
-            if isinstance(visible, BinaryLayer):
-                base = F.base_rate_logits(data, pseudocount=1.0).to(model.dtype)
-            else:
-                base = visible.base_parameters(data).get("bias", base)
+        if data is not None and 0 in model.observed and hasattr(model.layers[0], "bias"):
+            base = bias_from_data(model.layers[0], model.clamped(model.checked("data", data))[0])
         self.register_buffer("inverse_temperatures", betas)
         self.register_buffer("base_bias", base)
         self.register_buffer("swap_attempts", torch.zeros(num_replicas - 1, dtype=torch.float64))
@@ -153,14 +145,8 @@ class ReplicaExchangeSampler(PersistentSampler):
         """The base model's layer parameters (:meth:`EnergyModel.base_parameters`), layer 0's bias
         at ``base_bias``."""
         base = self.model.base_parameters()
-        visible = self.model.layers[0]
-        if parametrize.is_parametrized(visible, "bias"):  # e.g. tied copies: the free tensor behind it
-            free = self.base_bias
-            for parametrization in reversed(visible.parametrizations.bias):
-                free = parametrization.right_inverse(free)
-            base["layers.0.parametrizations.bias.original"] = free
-        elif "layers.0.bias" in base:
-            base["layers.0.bias"] = self.base_bias
+        if hasattr(self.model.layers[0], "bias"):  # tied copies: the free tensor behind it
+            base.update(self.model.layer_values(0, {"bias": self.base_bias}))
         return base
 
     def _base_energy(self, states: list[Tensor]) -> Tensor:

@@ -542,8 +542,8 @@ def _default_learning_rate(model: EnergyModel) -> float:
     """The starting rate for ``model``: see :func:`default_optimizer`."""
     if _is_small_rbm(model):
         return SMALL_RBM_LEARNING_RATE
-    hidden = len(model.layers) - len(model.observed)  # a label layer does not make a model deep
-    return DEFAULT_DEEP_LEARNING_RATE if hidden > 1 else DEFAULT_LEARNING_RATE
+    # A label layer does not make a model deep: hidden layers count.
+    return DEFAULT_DEEP_LEARNING_RATE if len(model.hidden) > 1 else DEFAULT_LEARNING_RATE
 
 
 def save_checkpoint(state: dict, path: str | os.PathLike) -> None:

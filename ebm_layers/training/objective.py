@@ -12,7 +12,7 @@ from torch import Tensor, nn
 
 from .._buffers import buffer_family, register_buffer_family
 from .._checks import check_model, check_range
-from ..evaluation.prediction import check_discriminative, conditional_log_likelihood
+from ..evaluation.prediction import check_discriminative, log_conditional
 from ..model.couplings import DenseCoupling, LateralCoupling
 from ..model.energy_model import EnergyModel
 from ..model.statistics import Statistics
@@ -219,7 +219,7 @@ class TwoPhaseObjective(nn.Module):
         # Linear in the parameters: d loss / d theta = -coefficient, an elementwise backward.
         loss = -sum(_dot(parameters[name], c) for name, c in coefficients.items())
         if self.discriminative_layer is not None and self.discriminative_weight > 0:
-            conditional = conditional_log_likelihood(model, v, self.discriminative_layer)
+            conditional = log_conditional(model, model.checked("v", v), self.discriminative_layer)
             loss = loss - self.discriminative_weight * conditional.mean()
         # Any non-finite statistic makes the loss non-finite (NaN and Inf propagate through it).
         finite = bool(torch.isfinite(loss))

@@ -10,11 +10,8 @@ from torch.nn.utils import parametrize
 
 from .._checks import check_count, check_model
 from .._random import resolve_generator
-from ..model import functional as F
-from ..model.couplings import DenseCoupling
-from ..model.energy_model import EnergyModel, rbm
+from ..model.energy_model import EnergyModel, bias_from_data, rbm
 from ..model.gaussian import GaussianLayer
-from ..model.graph import is_chain
 from ..model.units import BinaryLayer
 from ..phases.mean_field import MeanField
 
@@ -149,13 +146,7 @@ class _TiedCopies(nn.Module):
 def can_pretrain(model: EnergyModel) -> bool:
     """Whether :func:`pretrain` applies: a chain as :func:`dbm` builds (layer 0 observed alone, unmasked
     dense couplings ``(k, k + 1)``), its layer 0 binary or Gaussian, every other layer binary."""
-    return (
-        model.observed == (0,)
-        and is_chain(len(model.layers), model.edges)
-        and isinstance(model.layers[0], (BinaryLayer, GaussianLayer))
-        and all(isinstance(layer, BinaryLayer) for layer in model.layers[1:])
-        and all(isinstance(c, DenseCoupling) and c.mask is None for c in model.couplings)
-    )
+    return model.is_binary_chain(visible=(BinaryLayer, GaussianLayer))
 
 
 def _gaussian_stage(stage: EnergyModel, visible: GaussianLayer, copies: int) -> EnergyModel:
@@ -190,9 +181,7 @@ def _init_visible_bias(stage: EnergyModel, x: Tensor) -> None:
     """The visible biases of a stage from its (single-copy) input ``x``, as
     :meth:`EnergyModel.init_visible_bias_from` does for an ordinary model (binary units: the base
     rates' log-odds; Gaussian units: the mean)."""
-    visible = stage.layers[0]
-    bias = F.base_rate_logits(x, pseudocount=1.0) if isinstance(visible, BinaryLayer) else x.mean(0)
-    _free(visible, "bias").copy_(bias)
+    _free(stage.layers[0], "bias").copy_(bias_from_data(stage.layers[0], x))
 
 
 @torch.no_grad()
