@@ -300,6 +300,13 @@ class LateralCoupling(_MatrixCoupling):
         """Only the changed units' rows of the weight: a ``(B, k) @ (k, n)`` product."""
         return change[:, units] @ self.weight[units]
 
+    def entries(self, rows: Tensor, columns: Tensor) -> Tensor:
+        """``weight[rows, columns]`` for index tensors of one shape, read from the free matrix
+        without building the ``(n, n)`` weight (the same values: a few entries of a sparse mask)."""
+        upper = self.free_weight()[torch.minimum(rows, columns), torch.maximum(rows, columns)]
+        coupled = rows != columns if self.mask is None else self.mask[rows, columns]
+        return torch.where(coupled, upper, 0.0)
+
     def _lateral_size(self) -> int:
         return self.weight.shape[0]
 

@@ -44,7 +44,10 @@ class UnitLayer(nn.Module):
     ``expected_energy(mean)`` and ``expected_statistics(mean, weights)`` average ``U`` and the
     statistics over the factorised distribution with that mean (by default their values at the
     mean, exact for units whose term is linear in ``x``); ``base_parameters(data)`` gives the
-    independent base model annealing and tempering start from.
+    independent base model annealing and tempering start from. Layers of 0/1 units may define
+    ``logits(input)``, the log-odds ``(B, n)`` of each unit being on (``mean`` is their sigmoid): Gibbs
+    sampling then draws them under a lateral coupling class by class at the cost of the products
+    alone (:mod:`ebm_layers.phases.lateral`).
 
     Annealing and tempering interpolate the parameters ``base_parameters`` returns
     (``beta * theta + (1 - beta) * theta_0``, possibly one row per chain) and keep the others; that
@@ -167,9 +170,13 @@ class BinaryLayer(UnitLayer):
         """``-b . x`` per row."""
         return -(x @ self.bias)
 
+    def logits(self, input: Tensor) -> Tensor:
+        """The log-odds ``b + input`` of each unit being on, ``(B, n)``."""
+        return input + self.bias
+
     def mean(self, input: Tensor) -> Tensor:
         """``p(x = 1) = sigmoid(b + input)``."""
-        return (input + self.bias).sigmoid_()  # in place on the sum: one tensor, one pass less
+        return self.logits(input).sigmoid_()  # in place on the sum: one tensor, one pass less
 
     def sample(self, input: Tensor, generator: torch.Generator | F.Uniforms) -> Tensor:
         """Binary draw with ``p(x = 1) = sigmoid(b + input)``; not differentiable."""

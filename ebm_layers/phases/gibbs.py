@@ -18,6 +18,7 @@ from ..model.energy_model import EnergyModel
 from ..model.parameters import substituted
 from ..model.statistics import Statistics
 from ..model.units import UnitLayer
+from .lateral import sample_lateral_layer
 
 __all__ = ["DataParticles", "PersistentSampler", "gibbs_sweep", "sample_given"]
 
@@ -79,8 +80,10 @@ def gibbs_sweep(
                     input = model.input_or_zeros(states, i, scale)
                     probabilities[i] = layer.mean(input)
                     new[i] = layer.sample(input, source)
+                elif i in unitwise:
+                    new[i] = sample_lateral_layer(model, states, i, source, scale)
                 else:
-                    new[i] = model.update_layer(states, i, draw, scale=scale, by_class=i in unitwise)
+                    new[i] = model.update_layer(states, i, draw, scale=scale, by_class=False)
             for i, x in new.items():
                 states[i] = x
     return probabilities
