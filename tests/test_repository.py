@@ -211,6 +211,11 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
         ),
         ("open_data.py", ["--quick"], "target 96% for the label-layer model"),
         ("convolution.py", "--size 12 --maps 2 --kernel 3 --particles 4 --repeats 1".split(), "ratio"),
+        (
+            "lateral.py",
+            "--units 5 --chains 3 --side 4 --lattice-chains 2 --repeats 1 --rounds 1".split(),
+            "lattice",
+        ),
         pytest.param(
             "digits_features.py",
             "--splits 0 --epochs 1 --pretrain-epochs 1 --finetune-epochs 1 --ais-betas 10 --compare".split(),
