@@ -145,13 +145,14 @@ def _draw_classes(
     ``p - u`` ``(n, B)`` of every draw. With ``generator`` every class gets the exact correction of
     the grid cell; without, none (the caller checks the differences)."""
     differences = torch.empty_like(uniform)
+    field = uniform.new_empty(uniform.shape[1])  # one unit's chains, reused: no allocation per unit
     for c, weights in zip(plan, gathered):
         if c.unit is not None:
             j = c.unit
             if per_chain is None:
-                field = torch.addmv(offset[j], states.mT, weight[j], alpha=factor)
+                torch.addmv(offset[j], states.mT, weight[j], alpha=factor, out=field)
             else:
-                field = torch.addcmul(offset[j], states.mT @ weight[j], per_chain)
+                torch.addcmul(offset[j], torch.mv(states.mT, weight[j], out=field), per_chain, out=field)
             probability = field.sigmoid_()
             difference = torch.sub(probability, uniform[j], out=differences[j])
             if generator is None:
@@ -161,10 +162,9 @@ def _draw_classes(
             continue
         lateral = weight[c.units] @ states if weights is None else _gathered(states, c.neighbours, weights)
         if per_chain is None:
-            field = torch.add(offset[c.units], lateral, alpha=factor)
+            probability = torch.add(offset[c.units], lateral, alpha=factor).sigmoid_()
         else:
-            field = torch.addcmul(offset[c.units], lateral, per_chain)
-        probability = field.sigmoid_()
+            probability = torch.addcmul(offset[c.units], lateral, per_chain).sigmoid_()
         u = uniform[c.units]  # a copy: the exact draw may overwrite it
         difference = probability - u
         differences[c.units] = difference
