@@ -116,6 +116,12 @@ def _random_worker() -> ThreadPoolExecutor:
     return _worker[1]
 
 
+def _count(ones: Tensor) -> float:
+    """The number of ones in a contiguous 0/1 tensor, exactly: float sums are exact below 2^24 terms,
+    so large tensors are summed in parts of 2^23 (a float64 sum would copy the whole tensor first)."""
+    return sum(float(part.sum()) for part in ones.view(-1).split(1 << 23))
+
+
 def _threshold(probabilities: Tensor, uniform: Tensor, grid: float, generator: torch.Generator) -> Tensor:
     """``sample_bernoulli`` given the uniforms (overwritten with ``p - u``)."""
     difference = torch.sub(probabilities, uniform, out=uniform)
@@ -124,10 +130,9 @@ def _threshold(probabilities: Tensor, uniform: Tensor, grid: float, generator: t
     # ones counted by ``difference > 0`` but not by ``on``. Sums of 0/1 count exactly (in float32 below
     # 2^24 units) and are far cheaper than count_nonzero or building the cell's mask every time.
     positive = torch.gt(difference, 0.0, out=torch.empty_like(probabilities))
-    exact = None if positive.numel() < 2**24 else torch.float64
-    if float(positive.sum(dtype=exact)) != float(on.sum(dtype=exact)):
-        cell = (difference > 0) & (difference < grid)
-        fraction = difference[cell].to(torch.float64) / grid
+    if _count(positive) != _count(on):
+        cell = torch.nonzero(((difference > 0) & (difference < grid)).view(-1)).squeeze(1)
+        fraction = difference.view(-1)[cell].to(torch.float64) / grid
         draws = torch.rand(fraction.shape, dtype=torch.float64, generator=generator) < fraction
-        on[cell] = draws.to(on.dtype)
+        on.view(-1)[cell] = draws.to(on.dtype)
     return on
