@@ -12,7 +12,7 @@ import torch
 from scipy.stats import chi2_contingency
 
 from ebm_layers.model import functional as F
-from ebm_layers.model.functional import _UNIFORM_GRID, _threshold
+from ebm_layers.model.functional import UNIFORM_GRID, bernoulli_from_uniforms
 
 Z_BOUND = 4.5
 
@@ -20,7 +20,7 @@ Z_BOUND = 4.5
 @pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
 def test_uniform_draws_lie_on_the_assumed_grid(dtype):
     u = torch.empty(1_000_000, dtype=dtype).uniform_(generator=torch.Generator().manual_seed(0))
-    scaled = u / _UNIFORM_GRID[dtype]
+    scaled = u / UNIFORM_GRID[dtype]
     assert bool((scaled == scaled.floor()).all()) and float(u.max()) < 1.0 and float(u.min()) >= 0.0
 
 
@@ -43,17 +43,17 @@ def test_probabilities_below_the_grid_are_drawn_exactly():
     # for every such p. The exact draw turns units on only in the grid cell [0, 2^-24), and there
     # with probability p / 2^-24; conditioned on that cell (u = 0) the rate must be that fraction.
     g = torch.Generator().manual_seed(2)
-    grid = _UNIFORM_GRID[torch.float32]
+    grid = UNIFORM_GRID[torch.float32]
     for p in (2.0**-30, 1e-12, 1e-40):  # 1e-40 is subnormal in float32
         probabilities = torch.full((400_000,), p, dtype=torch.float32)
-        on = _threshold(probabilities, torch.zeros_like(probabilities), grid, g)  # every u in p's cell
+        on = bernoulli_from_uniforms(probabilities, torch.zeros_like(probabilities), g)  # every u in p's cell
         fraction = torch.tensor(p, dtype=torch.float32).double() / grid
         expected = float(fraction) * len(on)
         assert abs(float(on.sum()) - expected) < Z_BOUND * max(expected, 1.0) ** 0.5 + 1
     # In the cell of a probability on the grid's scale: p = (3 + 0.25) * 2^-24.
     p = torch.full((400_000,), 3.25 * grid)
     for k, rate in ((0, 1.0), (2, 1.0), (3, 0.25), (4, 0.0), (1000, 0.0)):
-        on = _threshold(p, torch.full_like(p, k * grid), grid, g)
+        on = bernoulli_from_uniforms(p, torch.full_like(p, k * grid), g)
         error = (rate * (1 - rate) / len(on)) ** 0.5
         assert abs(float(on.mean()) - rate) <= Z_BOUND * error + 1e-12, (k, float(on.mean()))
     # Negative control: the plain comparison turns the cell's units always on.

@@ -11,7 +11,16 @@ from concurrent.futures import ThreadPoolExecutor
 import torch
 from torch import Tensor
 
-__all__ = ["base_rates", "base_rate_logits", "batch_mean", "sample_bernoulli", "Uniforms"]
+__all__ = [
+    "UNIFORM_GRID",
+    "Uniforms",
+    "base_rate_logits",
+    "base_rates",
+    "batch_mean",
+    "bernoulli_from_uniforms",
+    "draw_uniforms",
+    "sample_bernoulli",
+]
 
 
 def batch_mean(x: Tensor, weights: Tensor | None = None) -> Tensor:
@@ -34,7 +43,7 @@ def base_rate_logits(data: Tensor, pseudocount: float) -> Tensor:
 
 # torch's uniform_ draws float32 on the grid k / 2^24 and float64 on k / 2^53 (checked in
 # tests/test_bernoulli.py); other dtypes use torch.bernoulli.
-_UNIFORM_GRID = {torch.float32: 2.0**-24, torch.float64: 2.0**-53}
+UNIFORM_GRID = {torch.float32: 2.0**-24, torch.float64: 2.0**-53}
 
 
 def sample_bernoulli(probabilities: Tensor, generator: torch.Generator | Uniforms) -> Tensor:
@@ -52,14 +61,13 @@ def sample_bernoulli(probabilities: Tensor, generator: torch.Generator | Uniform
     """
     source = generator if isinstance(generator, Uniforms) else None
     generator = generator.generator if source is not None else generator
-    grid = _UNIFORM_GRID.get(probabilities.dtype)
-    if grid is None:
+    if probabilities.dtype not in UNIFORM_GRID:
         return torch.bernoulli(probabilities, generator=generator)
     if source is not None and source.dtype == probabilities.dtype:
         uniform = source.take(probabilities.shape)
     else:
-        uniform = _uniform(probabilities.shape, probabilities.dtype, generator)
-    return _threshold(probabilities, uniform, grid, generator)
+        uniform = draw_uniforms(probabilities.shape, probabilities.dtype, generator)
+    return bernoulli_from_uniforms(probabilities, uniform, generator)
 
 
 class Uniforms:
@@ -79,7 +87,7 @@ class Uniforms:
         """The next uniforms, a fresh ``shape`` view the caller may overwrite."""
         count = math.prod(shape)
         if self._used + count > self._block.numel():
-            self._block = _uniform((max(self.block_size, count),), self.dtype, self.generator)
+            self._block = draw_uniforms((max(self.block_size, count),), self.dtype, self.generator)
             self._used = 0
         out = self._block[self._used : self._used + count].view(shape)
         self._used += count
@@ -94,7 +102,7 @@ _SPLIT_SIZE = 1 << 17
 _worker: tuple[int, ThreadPoolExecutor] | None = None
 
 
-def _uniform(shape: Sequence[int], dtype: torch.dtype, generator: torch.Generator) -> Tensor:
+def draw_uniforms(shape: Sequence[int], dtype: torch.dtype, generator: torch.Generator) -> Tensor:
     """Uniforms on [0, 1) of ``shape`` from ``generator`` (and, when large, a generator seeded
     from it), on torch's grid for ``dtype``."""
     out = torch.empty(shape, dtype=dtype)
@@ -122,8 +130,10 @@ def _count(ones: Tensor) -> float:
     return sum(float(part.sum()) for part in ones.view(-1).split(1 << 23))
 
 
-def _threshold(probabilities: Tensor, uniform: Tensor, grid: float, generator: torch.Generator) -> Tensor:
-    """``sample_bernoulli`` given the uniforms (overwritten with ``p - u``)."""
+def bernoulli_from_uniforms(probabilities: Tensor, uniform: Tensor, generator: torch.Generator) -> Tensor:
+    """``sample_bernoulli`` given the uniforms (float32 or float64, on torch's grid; overwritten with
+    ``p - u``); ``generator`` draws the rare corrections."""
+    grid = UNIFORM_GRID[probabilities.dtype]
     difference = torch.sub(probabilities, uniform, out=uniform)
     on = torch.ge(difference, grid, out=torch.empty_like(probabilities))  # written as 0.0 / 1.0
     # Units in the grid cell of their probability are rare (probability ``grid`` each): they are the

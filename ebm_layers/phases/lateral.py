@@ -109,7 +109,7 @@ def sample_lateral_layer(
     if isinstance(source, F.Uniforms) and source.dtype == current.dtype:
         uniform = source.take((n, batch))
     else:
-        uniform = F._uniform((n, batch), current.dtype, generator)
+        uniform = F.draw_uniforms((n, batch), current.dtype, generator)
     plan = _plan(lateral)
     per_chain = scale if isinstance(scale, Tensor) else None
     factor = 1.0 if scale is None or per_chain is not None else float(scale)
@@ -120,7 +120,7 @@ def sample_lateral_layer(
     ]
     # The whole (n, n) weight only when some class takes a dense product.
     weight = None if all(w is not None for w in gathered) else lateral.weight
-    grid = F._UNIFORM_GRID[current.dtype]
+    grid = F.UNIFORM_GRID[current.dtype]
     args = (weight, plan, gathered, offset, uniform, factor, per_chain, grid)
     drawn, differences = _draw_classes(current.mT.contiguous(), *args, generator=None)
     if bool(((differences > 0) & (differences < grid)).any()):
@@ -158,7 +158,7 @@ def _draw_classes(
             if generator is None:
                 torch.ge(difference, grid, out=states[j])
             else:
-                states[j] = F._threshold(probability, uniform[j].clone(), grid, generator)
+                states[j] = F.bernoulli_from_uniforms(probability, uniform[j].clone(), generator)
             continue
         lateral = weight[c.units] @ states if weights is None else _gathered(states, c.neighbours, weights)
         if per_chain is None:
@@ -171,7 +171,7 @@ def _draw_classes(
         if generator is None:
             new = torch.ge(difference, grid).to(states.dtype)
         else:
-            new = F._threshold(probability, u, grid, generator)
+            new = F.bernoulli_from_uniforms(probability, u, generator)
         states.index_copy_(0, c.units, new)
     return states, differences
 
