@@ -292,17 +292,28 @@ def test_sparsity_target_lowers_hidden_activity():
     assert sparse < plain - 0.2  # measured: 0.11 vs 0.54
 
 
-def test_weight_decay_groups_decay_weights_only(lateral_model):
-    groups = el.weight_decay_groups(lateral_model, 0.1)
+@pytest.mark.parametrize("kind", ["lateral", "shared bias", "learned std"])
+def test_weight_decay_groups_decay_weights_only(kind, lateral_model):
+    model = {
+        "lateral": lambda: lateral_model,
+        "shared bias": lambda: el.EnergyModel(
+            [el.BinaryLayer(36), el.share_bias_by_channel(el.BinaryLayer(32), 2)],
+            [el.Conv2dCoupling(0, 1, (1, 6, 6), 2, 3)],
+        ),
+        "learned std": lambda: el.EnergyModel(
+            [el.GaussianLayer(4, learn_std=True), el.BinaryLayer(3)], [el.DenseCoupling(0, 1, 4, 3)]
+        ),
+    }[kind]()
+    groups = el.weight_decay_groups(model, 0.1)
     ids = [id(p) for group in groups for p in group["params"]]
-    assert sorted(ids) == sorted(id(p) for p in lateral_model.parameters())  # each exactly once
-    before = {name: p.detach().clone() for name, p in lateral_model.named_parameters()}
-    optimizer = torch.optim.SGD(groups, lr=0.5)
-    for p in lateral_model.parameters():
+    assert sorted(ids) == sorted(id(p) for p in model.parameters())  # each exactly once
+    before = {name: p.detach().clone() for name, p in model.named_parameters()}
+    optimizer = torch.optim.SGD(groups, lr=0.5)  # every group's tensors are leaves
+    for p in model.parameters():
         p.grad = torch.zeros_like(p)
     optimizer.step()
-    for name, p in lateral_model.named_parameters():
-        factor = 1.0 if name.endswith("bias") else 1 - 0.5 * 0.1
+    for name, p in model.named_parameters():
+        factor = 1.0 if name.startswith("layers.") else 1 - 0.5 * 0.1
         torch.testing.assert_close(p.detach(), factor * before[name])
 
 

@@ -460,7 +460,8 @@ def _mean_free_energy(model: EnergyModel, v: Tensor) -> float | None:
 
 
 def weight_decay_groups(model: EnergyModel, weight_decay: float) -> list[dict]:
-    """Optimizer parameter groups that decay weights only, not biases.
+    """Optimizer parameter groups that decay the couplings' weights only, not the layers' parameters
+    (biases, a Gaussian layer's learned ``log_std``).
 
     ``torch.optim``'s ``weight_decay`` applies to every parameter of a group, biases included;
     pass ``weight_decay_groups(model, 1e-4)`` instead of ``model.parameters()`` to decay only the
@@ -476,6 +477,9 @@ def weight_decay_groups(model: EnergyModel, weight_decay: float) -> list[dict]:
     """
     check_model(model)
     weight_decay = check_range("weight_decay", weight_decay, 0.0)
-    weights = [p for c in model.couplings for p in c.parameters()]
-    biases = [layer.bias for layer in model.layers]
-    return [{"params": weights, "weight_decay": weight_decay}, {"params": biases, "weight_decay": 0.0}]
+    weights = list(model.couplings.parameters())
+    decayed = {id(p) for p in weights}
+    # Every other parameter: the layers' biases (the free tensors behind shared ones), learned
+    # standard deviations, and anything a layer of one's own holds.
+    others = [p for p in model.parameters() if id(p) not in decayed]
+    return [{"params": weights, "weight_decay": weight_decay}, {"params": others, "weight_decay": 0.0}]
