@@ -81,6 +81,27 @@ def test_grey_markings_example_runs_at_tiny_size(tmp_path):
 
 
 @pytest.mark.slow
+def test_marking_sheets_example_runs_at_toy_size(tmp_path):
+    # A smoke test (common practice, no source): it runs, prints its table with every model's
+    # column, and saves its pictures and report.
+    result = run_script(
+        ROOT / "examples" / "marking_sheets.py", "--quick", "--no-progress", timeout=300, cwd=tmp_path
+    )
+    assert result.returncode == 0, result.stderr
+    for row in ("parameters", "test log-likelihood", "reverse AIS on the same sheets", "raw pixels"):
+        assert row in result.stdout
+    assert "convolutional" in result.stdout and "dense, 1 hidden" in result.stdout
+    out = tmp_path / "out" / "marking_sheets"
+    for name in ("filters.png", "samples_convolutional.png", "training_sheets.png", "report.json"):
+        assert (out / name).stat().st_size > 100, name
+    report = json.loads((out / "report.json").read_text())
+    numbers = [
+        m[key] for m in report["models"] for key in ("log_z", "test_log_likelihood", "presence_accuracy")
+    ]
+    assert all(math.isfinite(number) for number in numbers)
+
+
+@pytest.mark.slow
 def test_small_models_example_runs_and_prints_exact_log_partition():
     result = run_script(ROOT / "examples" / "small_models.py")
     assert result.returncode == 0, result.stderr
