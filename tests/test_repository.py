@@ -210,7 +210,7 @@ def test_readme_python_examples_run(tmp_path, monkeypatch):
         ),
         (
             "training.py",
-            "--examples 200 --epochs 1 --digits-epochs 1".split(),
+            "--examples 200 --epochs 1 --digits-epochs 1 --runs 1".split(),
             "scikit-learn",
         ),
         (
