@@ -129,3 +129,14 @@ def test_a_sweep_is_reproducible_from_the_generator_state():
         el.phases.gibbs.gibbs_sweep(model, states, torch.Generator().manual_seed(seed))
         runs.append(torch.cat(states, dim=1))
     assert torch.equal(runs[0], runs[1]) and not torch.equal(runs[0], runs[2])
+
+
+def test_counts_of_large_zero_one_tensors_are_exact():
+    # Float32 sums are exact below 2^24 terms (IEEE 754 single precision, from memory); larger
+    # tensors are counted in parts, so the count stays exact past 2^24 ones.
+    from ebm_layers.model.functional import _count
+
+    ones = torch.ones(2**24 + 5)
+    ones[7] = 0.0
+    assert _count(ones) == 2**24 + 4
+    assert _count(torch.tensor([0.0, 1.0, 1.0])) == 2

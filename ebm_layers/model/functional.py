@@ -127,6 +127,8 @@ def _random_worker() -> ThreadPoolExecutor:
 def _count(ones: Tensor) -> float:
     """The number of ones in a contiguous 0/1 tensor, exactly: float sums are exact below 2^24 terms,
     so large tensors are summed in parts of 2^23 (a float64 sum would copy the whole tensor first)."""
+    if ones.numel() < 1 << 24:
+        return float(ones.sum())
     return sum(float(part.sum()) for part in ones.view(-1).split(1 << 23))
 
 
