@@ -12,7 +12,7 @@ import torch
 from scipy.stats import chi2_contingency
 
 from ebm_layers.model import functional as F
-from ebm_layers.model.functional import UNIFORM_GRID, bernoulli_from_uniforms
+from ebm_layers.model.functional import UNIFORM_GRID, _count, bernoulli_from_uniforms
 
 Z_BOUND = 4.5
 
@@ -134,8 +134,6 @@ def test_a_sweep_is_reproducible_from_the_generator_state():
 def test_counts_of_large_zero_one_tensors_are_exact():
     # Float32 sums are exact below 2^24 terms (IEEE 754 single precision, from memory); larger
     # tensors are counted in parts, so the count stays exact past 2^24 ones.
-    from ebm_layers.model.functional import _count
-
     ones = torch.ones(2**24 + 5)
     ones[7] = 0.0
     assert _count(ones) == 2**24 + 4
