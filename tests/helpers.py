@@ -6,6 +6,7 @@ without re-importing torch (scripts, distributed ranks). The ground truth itself
 
 from __future__ import annotations
 
+import itertools
 import math
 import multiprocessing
 import os
@@ -197,3 +198,50 @@ def expected_total_variation(p: Tensor, count: int) -> float:
 
 def total_variation(p: Tensor, q: Tensor) -> float:
     return 0.5 * float((p.to(F64) - q.to(F64)).abs().sum())
+
+
+# ---------------------------------------------------------------------------------------------
+# A 3 x 3 lattice of binary units (a masked lateral coupling): exact distribution and one sweep.
+
+
+def lattice_mask(rows: int, columns: int) -> Tensor:
+    """Nearest neighbours on a ``rows`` x ``columns`` grid (no wrap-around), units in row order."""
+    n = rows * columns
+    mask = torch.zeros(n, n, dtype=torch.bool)
+    for r, c in itertools.product(range(rows), range(columns)):
+        unit = r * columns + c
+        if c + 1 < columns:
+            mask[unit, unit + 1] = mask[unit + 1, unit] = True
+        if r + 1 < rows:
+            mask[unit, unit + columns] = mask[unit + columns, unit] = True
+    return mask
+
+
+def lattice_states() -> Tensor:
+    """Every state of a 3 x 3 lattice, ``(512, 9)``, in ``itertools.product`` order."""
+    return torch.tensor(list(itertools.product((0.0, 1.0), repeat=9)), dtype=F64)
+
+
+def lattice_probabilities(model: el.EnergyModel) -> Tensor:
+    """Exact probabilities of the 512 states from ``b.x + sum over lattice edges w_ij x_i x_j``
+    written out edge by edge (mathematics)."""
+    x = lattice_states()
+    weight = model.couplings[0].weight.detach()
+    mask = lattice_mask(3, 3)
+    log_f = x @ model.layers[0].bias.detach()
+    for i, j in zip(*torch.nonzero(torch.triu(mask, 1), as_tuple=True)):
+        log_f = log_f + weight[i, j] * x[:, i] * x[:, j]
+    return torch.softmax(log_f, 0)
+
+
+def total_variation_after_one_sweep(model: el.EnergyModel, count: int, seed: int) -> tuple[float, float]:
+    """Chains started at exact draws, one sweep: total variation to the exact distribution, and
+    the expected total variation of ``count`` exact draws (normal approximation, from memory)."""
+    p = lattice_probabilities(model)
+    g = torch.Generator().manual_seed(seed)
+    sampler = el.PersistentSampler(model, num_particles=count, generator=g)
+    sampler.particles_0 = lattice_states()[torch.multinomial(p, count, replacement=True, generator=g)]
+    after = sampler()[0]
+    codes = (after.long() * (2 ** torch.arange(8, -1, -1))).sum(1)  # itertools.product order
+    frequencies = torch.bincount(codes, minlength=512).to(F64) / count
+    return total_variation(frequencies, p), expected_total_variation(p, count)

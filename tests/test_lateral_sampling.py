@@ -12,13 +12,11 @@ Sources of the checks:
   frequencies with binomial z-scores (common practice, no source), against a negative control
   that skips the redraw.
 - stationarity against exact enumeration of a 3 x 3 lattice (mathematics) with the gathered path
-  forced, by the total-variation check of tests/test_masks.py (common practice, no source).
+  forced, by the total-variation check of tests/test_masks.py (tests/helpers.py; common practice,
+  no source).
 """
 
 from __future__ import annotations
-
-import itertools
-import math
 
 import pytest
 import torch
@@ -27,18 +25,10 @@ from torch import Tensor
 import ebm_layers as el
 from ebm_layers.model import functional as F
 from ebm_layers.phases import lateral as fast
+from ebm_layers.phases.gibbs import gibbs_sweep
+from tests.helpers import lattice_mask, total_variation_after_one_sweep
 
 F64 = torch.float64
-
-
-def lattice_mask(side: int) -> Tensor:
-    """Four nearest neighbours on a ``side`` x ``side`` grid (no wrap-around), units in row order."""
-    index = torch.arange(side * side).view(side, side)
-    mask = torch.zeros(side * side, side * side, dtype=torch.bool)
-    for a, b in ((index[:, :-1], index[:, 1:]), (index[:-1, :], index[1:, :])):
-        mask[a.flatten(), b.flatten()] = True
-        mask[b.flatten(), a.flatten()] = True
-    return mask
 
 
 def pairwise_model(n: int, mask: Tensor | None, hidden: int = 0, dtype=F64, seed: int = 0) -> el.EnergyModel:
@@ -89,9 +79,9 @@ CASES = {
     # name: (units, mask, hidden units, GATHER_RATIO) — the ratio decides gathered or dense classes.
     "dense, one unit at a time": (7, None, 0, fast.GATHER_RATIO),
     "dense with a hidden layer": (7, None, 3, fast.GATHER_RATIO),
-    "lattice, gathered products": (25, lattice_mask(5), 0, 1),
-    "lattice, dense products": (25, lattice_mask(5), 0, 10**9),
-    "lattice with a hidden layer, gathered": (25, lattice_mask(5), 4, 1),
+    "lattice, gathered products": (25, lattice_mask(5, 5), 0, 1),
+    "lattice, dense products": (25, lattice_mask(5, 5), 0, 10**9),
+    "lattice with a hidden layer, gathered": (25, lattice_mask(5, 5), 4, 1),
 }
 
 
@@ -148,7 +138,7 @@ def cell_setup(mask: Tensor | None):
     return model, (torch.floor(p / grid) * grid).float(), fraction
 
 
-@pytest.mark.parametrize("mask", [None, lattice_mask(3)], ids=["one unit at a time", "lattice"])
+@pytest.mark.parametrize("mask", [None, lattice_mask(3, 3)], ids=["one unit at a time", "lattice"])
 @pytest.mark.parametrize("redraw", [True, False], ids=["library", "negative control without redraw"])
 def test_uniforms_in_their_grid_cell_turn_units_on_with_the_exact_probability(mask, redraw, monkeypatch):
     model, below, fraction = cell_setup(mask)
@@ -166,30 +156,10 @@ def test_uniforms_in_their_grid_cell_turn_units_on_with_the_exact_probability(ma
     assert bool((z.abs() < 5).all()) == redraw, z
 
 
-def total_variation_after_one_sweep(model: el.EnergyModel, count: int, seed: int) -> tuple[float, float]:
-    """3 x 3 lattice chains started at exact draws, one sweep: total variation to the exact
-    distribution (enumeration from the energy written edge by edge) and the expected total variation
-    of ``count`` exact draws (normal approximation, from memory)."""
-    x = torch.tensor(list(itertools.product((0.0, 1.0), repeat=9)), dtype=F64)
-    weight = model.couplings[0].weight.detach()
-    log_f = x @ model.layers[0].bias.detach()
-    for i, j in zip(*torch.nonzero(torch.triu(lattice_mask(3), 1), as_tuple=True)):
-        log_f = log_f + weight[i, j] * x[:, i] * x[:, j]
-    p = torch.softmax(log_f, 0)
-    g = torch.Generator().manual_seed(seed)
-    sampler = el.PersistentSampler(model, num_particles=count, generator=g)
-    sampler.particles_0 = x[torch.multinomial(p, count, replacement=True, generator=g)]
-    after = sampler()[0]
-    codes = (after.long() * (2 ** torch.arange(8, -1, -1))).sum(1)  # itertools.product order
-    frequencies = torch.bincount(codes, minlength=512).to(F64) / count
-    noise = float(torch.sqrt(2 * p * (1 - p) / (math.pi * count)).sum() / 2)
-    return 0.5 * float((frequencies - p).abs().sum()), noise
-
-
 @pytest.mark.parametrize("broken", [False, True], ids=["gathered", "negative control: wrong neighbours"])
 def test_gathered_sweeps_leave_the_lattice_distribution_invariant(broken, monkeypatch):
     monkeypatch.setattr(fast, "GATHER_RATIO", 1)
-    model = pairwise_model(9, lattice_mask(3), seed=4)
+    model = pairwise_model(9, lattice_mask(3, 3), seed=4)
     with torch.no_grad():
         model.couplings[0].weight = model.couplings[0].weight * 0.8
     plan = fast._plan(model.couplings[0])
@@ -216,12 +186,14 @@ def test_layers_without_logits_take_the_generic_update():
     assert fast.can_sample_fast(pairwise_model(4, None), 0)
     assert not fast.can_sample_fast(pairwise_model(4, None).to(torch.bfloat16), 0)
     g = torch.Generator().manual_seed(6)
-    drawn = fast.sample_lateral_layer(model, [torch.zeros(5, 4)], 0, g)
+    states = [torch.zeros(5, 4)]
+    gibbs_sweep(model, states, g)  # the sweep takes the generic update for this layer
+    drawn = states[0]
     assert drawn.shape == (5, 4) and bool(((drawn == 0) | (drawn == 1)).all())
 
 
 def test_entries_read_the_weight_without_building_it():
-    for mask in (None, lattice_mask(3)):
+    for mask in (None, lattice_mask(3, 3)):
         coupling = pairwise_model(9, mask).couplings[0]
         rows = torch.randint(0, 9, (20, 5), generator=torch.Generator().manual_seed(7))
         columns = torch.randint(0, 9, (20, 5), generator=torch.Generator().manual_seed(8))

@@ -18,7 +18,7 @@ from ..model.energy_model import EnergyModel
 from ..model.parameters import substituted
 from ..model.statistics import Statistics
 from ..model.units import UnitLayer
-from .lateral import sample_lateral_layer
+from .lateral import can_sample_fast, sample_lateral_layer
 
 __all__ = ["DataParticles", "PersistentSampler", "gibbs_sweep", "sample_given"]
 
@@ -80,10 +80,10 @@ def gibbs_sweep(
                     input = model.input_or_zeros(states, i, scale)
                     probabilities[i] = layer.mean(input)
                     new[i] = layer.sample(input, source)
-                elif i in unitwise:
+                elif i in unitwise and can_sample_fast(model, i):
                     new[i] = sample_lateral_layer(model, states, i, source, scale)
                 else:
-                    new[i] = model.update_layer(states, i, draw, scale=scale, by_class=False)
+                    new[i] = model.update_layer(states, i, draw, scale=scale, by_class=i in unitwise)
             for i, x in new.items():
                 states[i] = x
     return probabilities

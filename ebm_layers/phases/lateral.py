@@ -29,7 +29,7 @@ from ..model import functional as F
 from ..model.couplings import LateralCoupling
 from ..model.energy_model import EnergyModel
 
-__all__ = ["sample_lateral_layer"]
+__all__ = ["can_sample_fast", "sample_lateral_layer"]
 
 # A class takes the gathered product when its units have at most n / GATHER_RATIO neighbours each: a
 # gathered multiply-add cost 13-16 times a dense one here (B = 100, n = 1,024 and 4,096, one
@@ -62,11 +62,12 @@ def _plan(coupling: LateralCoupling) -> list[_Class]:
         neighbours = None
         if mask is not None and len(units) > 1:
             rows = mask[units]
-            degree = int(rows.sum(1).max())
+            counts = rows.sum(1, keepdim=True)
+            degree = int(counts.max())
             if degree * GATHER_RATIO <= n:
                 # The neighbours of each unit first, then the unit itself as padding (zero weight).
                 order = torch.sort(rows.to(torch.int8), dim=1, descending=True, stable=True).indices
-                padded = torch.where(torch.arange(n) < rows.sum(1, keepdim=True), order, units[:, None])
+                padded = torch.where(torch.arange(n) < counts, order, units[:, None])
                 neighbours = padded[:, : max(degree, 1)].contiguous()
         plan.append(_Class(units, int(units[0]) if len(units) == 1 else None, neighbours))
     coupling._sampling_plan = (version, plan)
@@ -74,11 +75,14 @@ def _plan(coupling: LateralCoupling) -> list[_Class]:
 
 
 def can_sample_fast(model: EnergyModel, target: int) -> bool:
-    """Whether :func:`sample_lateral_layer` takes the fast path for layer ``target``."""
+    """Whether :func:`sample_lateral_layer` can draw layer ``target``: units with ``logits``, the
+    built-in lateral coupling with one ``(n, n)`` matrix, float32 or float64. Other layers with a
+    lateral coupling take the generic :meth:`EnergyModel.update_layer`."""
     layer, lateral = model.layers[target], model.lateral_coupling(target)
     return (
         callable(getattr(layer, "logits", None))
         and isinstance(lateral, LateralCoupling)
+        and lateral.free_weight().ndim == 2
         and model.dtype in (torch.float32, torch.float64)
     )
 
@@ -91,15 +95,10 @@ def sample_lateral_layer(
     source: torch.Generator | F.Uniforms,
     scale: float | Tensor | None = None,
 ) -> Tensor:
-    """A Gibbs draw ``(B, n)`` of layer ``target`` (which has a lateral coupling) given ``states``,
-    class by class; ``scale`` multiplies what the couplings send (an inverse temperature). Layers
-    without ``logits`` or with another lateral coupling take the generic
-    :meth:`EnergyModel.update_layer`."""
+    """A Gibbs draw ``(B, n)`` of layer ``target`` given ``states``, class by class, for a layer
+    :func:`can_sample_fast` accepts; ``scale`` multiplies what the couplings send (an inverse
+    temperature)."""
     layer, lateral = model.layers[target], model.lateral_coupling(target)
-    if not can_sample_fast(model, target) or lateral.free_weight().ndim != 2:
-        return model.update_layer(
-            states, target, lambda unit_layer, input: unit_layer.sample(input, source), scale=scale
-        )
     current = states[target]
     batch, n = current.shape
     base = model.layer_input(states, target, lateral=False, scale=scale)
@@ -111,10 +110,8 @@ def sample_lateral_layer(
     else:
         uniform = F.draw_uniforms((n, batch), current.dtype, generator)
     plan = _plan(lateral)
-    per_chain = scale if isinstance(scale, Tensor) else None
+    per_chain = scale.to(current.dtype) if isinstance(scale, Tensor) else None
     factor = 1.0 if scale is None or per_chain is not None else float(scale)
-    if per_chain is not None:
-        per_chain = per_chain.to(current.dtype)
     gathered = [
         None if c.neighbours is None else lateral.entries(c.units[:, None], c.neighbours) for c in plan
     ]
