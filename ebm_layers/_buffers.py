@@ -19,10 +19,15 @@ def register_buffer_family(module: nn.Module, prefix: str, tensors: Iterable[Ten
 
 def buffer_family(module: nn.Module, prefix: str, count: int, start: int = 0) -> list[Tensor]:
     """The buffers ``<prefix>_<start>`` ... ``<prefix>_<start + count - 1>``, in order."""
-    return [getattr(module, f"{prefix}_{i}") for i in range(start, start + count)]
+    buffers = module._buffers  # read directly: Module.__getattr__ costs ~1 us per name on the hot path
+    return [buffers[f"{prefix}_{i}"] for i in range(start, start + count)]
 
 
 def set_buffer_family(module: nn.Module, prefix: str, tensors: Sequence[Tensor], start: int = 0) -> None:
-    """Replace the buffers ``<prefix>_<start>``, ... with ``tensors`` (no copy)."""
+    """Replace the registered buffers ``<prefix>_<start>``, ... with ``tensors`` (no copy)."""
+    buffers = module._buffers  # written directly: Module.__setattr__ costs ~4 us per buffer per sweep
     for i, tensor in enumerate(tensors, start=start):
-        setattr(module, f"{prefix}_{i}", tensor)
+        name = f"{prefix}_{i}"
+        if name not in buffers:
+            raise KeyError(f"{type(module).__name__} has no buffer {name}")
+        buffers[name] = tensor

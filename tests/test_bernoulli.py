@@ -2,7 +2,8 @@
 
 Sources of the checks: binomial z-scores of draw counts (mathematics); Pearson's chi-square test
 of independence on 2x2 tables, ``scipy.stats.chi2_contingency``; the grid of torch's uniform
-draws is checked directly, since the exactness argument rests on it.
+draws is checked directly, since the exactness argument rests on it. The draws are checked on both
+paths: the native Philox kernel (when a C compiler is present) and torch's own generator.
 """
 
 from __future__ import annotations
@@ -12,9 +13,20 @@ import torch
 from scipy.stats import chi2_contingency
 
 from ebm_layers.model import functional as F
+from ebm_layers.model import native
 from ebm_layers.model.functional import UNIFORM_GRID, _count, bernoulli_from_uniforms
 
 Z_BOUND = 4.5
+
+
+@pytest.fixture(params=["native", "torch"])
+def draw_path(request, monkeypatch):
+    """Run a test on the native kernel's path and on torch's own uniforms."""
+    if request.param == "torch":
+        monkeypatch.setenv("EBM_LAYERS_NATIVE", "0")
+    elif not native.available():
+        pytest.skip(f"the native kernel is not available here: {native.unavailable_reason}")
+    return request.param
 
 
 @pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
@@ -25,7 +37,7 @@ def test_uniform_draws_lie_on_the_assumed_grid(dtype):
 
 
 @pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
-def test_draws_have_the_right_mean_across_the_unit_interval(dtype):
+def test_draws_have_the_right_mean_across_the_unit_interval(dtype, draw_path):
     g = torch.Generator().manual_seed(1)
     p = torch.tensor([0.0, 1e-3, 0.01, 0.1, 0.25, 0.5, 0.7, 0.9, 0.999, 1.0], dtype=dtype)
     draws = F.sample_bernoulli(p.expand(200_000, -1).contiguous(), g)
@@ -65,7 +77,7 @@ def chi_square_p(a: torch.Tensor, b: torch.Tensor) -> float:
     return chi2_contingency(table).pvalue
 
 
-def test_units_and_successive_draws_are_independent():
+def test_units_and_successive_draws_are_independent(draw_path):
     g = torch.Generator().manual_seed(3)
     p = torch.tensor([0.3, 0.5, 0.8, 0.5])
     first = F.sample_bernoulli(p.expand(100_000, -1).contiguous(), g)
@@ -80,7 +92,7 @@ def test_units_and_successive_draws_are_independent():
     assert chi_square_p(shared[:, 0], shared[:, 1]) < 1e-10
 
 
-def test_draws_follow_the_generator():
+def test_draws_follow_the_generator(draw_path):
     p = torch.rand(50, 20, generator=torch.Generator().manual_seed(4))
     a = F.sample_bernoulli(p, torch.Generator().manual_seed(5))
     b = F.sample_bernoulli(p, torch.Generator().manual_seed(5))
@@ -89,8 +101,8 @@ def test_draws_follow_the_generator():
     assert torch.equal(p, torch.rand(50, 20, generator=torch.Generator().manual_seed(4)))  # input untouched
 
 
-def test_large_draws_do_not_depend_on_the_number_of_threads():
-    # Draws of 2^17 units or more are split between two threads; the numbers must not change.
+def test_large_draws_do_not_depend_on_the_number_of_threads(draw_path):
+    # torch's path splits draws of 2^17 units or more between two threads; the numbers must not change.
     p = torch.full((400, 1000), 0.5)
     threads = torch.get_num_threads()
     try:
@@ -101,11 +113,12 @@ def test_large_draws_do_not_depend_on_the_number_of_threads():
     finally:
         torch.set_num_threads(threads)
     assert torch.equal(one, two)
-    halves = one.view(-1).chunk(2)  # the halves come from different generators: not copies
+    halves = one.view(-1).chunk(2)  # the halves come from different generators (or stream parts): not copies
     assert not torch.equal(*halves) and abs(float(halves[0].mean()) - float(halves[1].mean())) < 0.01
 
 
-def test_uniform_blocks_hand_out_one_draw_in_order():
+def test_uniform_blocks_hand_out_one_draw_in_order(monkeypatch):
+    monkeypatch.setenv("EBM_LAYERS_NATIVE", "0")  # torch's path: blocks of torch's uniforms
     g = torch.Generator().manual_seed(8)
     uniforms = F.Uniforms(g, torch.float32, block_size=10)
     parts = [uniforms.take((2, 3)), uniforms.take((4,))]
@@ -119,7 +132,40 @@ def test_uniform_blocks_hand_out_one_draw_in_order():
     assert draws.dtype == torch.float64
 
 
-def test_a_sweep_is_reproducible_from_the_generator_state():
+def test_native_blocks_hand_out_one_stream_in_order():
+    if not native.available():
+        pytest.skip(f"the native kernel is not available here: {native.unavailable_reason}")
+    uniforms = F.Uniforms(torch.Generator().manual_seed(8), torch.float32, block_size=10)
+    parts = [uniforms.take((2, 3)), uniforms.take((4,)), uniforms.take((25,))]
+    key = F.stream_key(torch.Generator().manual_seed(8))  # one number of the generator keys the stream
+    whole = native.fill_uniforms(torch.empty(35), key, 0)
+    assert torch.equal(torch.cat([part.reshape(-1) for part in parts]), whole)
+    # A fused draw takes its place in the same stream without storing the uniforms.
+    p = torch.rand(7, generator=torch.Generator().manual_seed(0))
+    on = F.sample_bernoulli(p, uniforms)
+    assert torch.equal(on, (p - native.fill_uniforms(torch.empty(7), key, 35) > 0).float())
+
+
+def test_native_draws_decide_the_grid_cell_exactly():
+    # The fused kernel only counts the units whose uniform fell in their probability's grid cell;
+    # sample_bernoulli must then decide those with probability (p - u) / grid, as the torch path does.
+    if not native.available():
+        pytest.skip(f"the native kernel is not available here: {native.unavailable_reason}")
+    grid = UNIFORM_GRID[torch.float32]
+    u = native.fill_uniforms(torch.empty(400_000), F.stream_key(torch.Generator().manual_seed(12)), 0)
+    in_cell = u < 0.25  # there p = u + grid / 4 is representable, in u's cell
+    p = torch.where(in_cell, u + grid / 4, 1.0)  # elsewhere always on
+    on = F.sample_bernoulli(p, torch.Generator().manual_seed(12))
+    assert bool((on[~in_cell] == 1).all())
+    rate, count = float(on[in_cell].mean()), int(in_cell.sum())
+    assert abs(rate - 0.25) < Z_BOUND * (0.25 * 0.75 / count) ** 0.5, rate
+    # Negative control: the kernel's own comparison leaves every cell unit off.
+    plain = torch.empty_like(p)
+    assert native.bernoulli(p, plain, F.stream_key(torch.Generator().manual_seed(12)), 0) == count
+    assert float(plain[in_cell].sum()) == 0.0
+
+
+def test_a_sweep_is_reproducible_from_the_generator_state(draw_path):
     import ebm_layers as el
 
     model = el.dbm(6, 5, 4, generator=torch.Generator().manual_seed(9))

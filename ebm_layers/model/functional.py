@@ -11,6 +11,8 @@ from concurrent.futures import ThreadPoolExecutor
 import torch
 from torch import Tensor
 
+from . import native
+
 __all__ = [
     "UNIFORM_GRID",
     "Uniforms",
@@ -20,6 +22,7 @@ __all__ = [
     "bernoulli_from_uniforms",
     "draw_uniforms",
     "sample_bernoulli",
+    "stream_key",
 ]
 
 
@@ -58,16 +61,33 @@ def sample_bernoulli(probabilities: Tensor, generator: torch.Generator | Uniform
     unit is on with probability ``(p - u) / e`` by a second, float64 draw: in total exactly ``p``
     (to within ``e * 2^-53``). ``p - u`` is computed exactly where it matters, since ``u`` and
     ``p`` are then within a factor of two (Sterbenz's lemma, from memory).
+
+    With the native kernel (:mod:`~ebm_layers.model.native`) the uniforms come from a Philox stream
+    keyed by ``generator`` and the comparison is made in the same pass, without storing them.
     """
     source = generator if isinstance(generator, Uniforms) else None
     generator = generator.generator if source is not None else generator
     if probabilities.dtype not in UNIFORM_GRID:
         return torch.bernoulli(probabilities, generator=generator)
-    if source is not None and source.dtype == probabilities.dtype:
+    same_stream = source is not None and source.dtype == probabilities.dtype
+    if native.available():
+        p = probabilities.contiguous()
+        key, offset = source.reserve(p.numel()) if same_stream else (stream_key(generator), 0)
+        on = torch.empty_like(p)
+        if native.bernoulli(p, on, key, offset):  # units in their grid cell: decided as below
+            uniform = native.fill_uniforms(torch.empty_like(p), key, offset)
+            on = bernoulli_from_uniforms(p, uniform, generator)
+        return on
+    if same_stream:
         uniform = source.take(probabilities.shape)
     else:
         uniform = draw_uniforms(probabilities.shape, probabilities.dtype, generator)
     return bernoulli_from_uniforms(probabilities, uniform, generator)
+
+
+def stream_key(generator: torch.Generator) -> int:
+    """A key of the native Philox stream, drawn from ``generator`` (one number of its stream)."""
+    return int(torch.randint(0, 2**62, (), generator=generator))
 
 
 class Uniforms:
@@ -76,16 +96,30 @@ class Uniforms:
     One block for all the draws of a Gibbs sweep (or of many annealing steps) costs one call, filled
     by two threads when large, instead of one call per layer. ``take`` draws a new block of
     ``max(block_size, needed)`` when the current one runs out (its rest is dropped), so the
-    numbers depend only on the sequence of requests.
+    numbers depend only on the sequence of requests. With the native kernel the block is one Philox
+    stream, keyed by one number from ``generator`` when first used: ``take`` fills the next numbers
+    of it, and ``reserve`` hands out positions in it for draws that never store their uniforms.
     """
 
     def __init__(self, generator: torch.Generator, dtype: torch.dtype, block_size: int) -> None:
         self.generator, self.dtype, self.block_size = generator, dtype, block_size
         self._block, self._used = torch.empty(0, dtype=dtype), 0
+        self._key: int | None = None
+
+    def reserve(self, count: int) -> tuple[int, int]:
+        """The key and offset of the next ``count`` numbers of the native stream."""
+        if self._key is None:
+            self._key = stream_key(self.generator)
+        offset = self._used
+        self._used += count
+        return self._key, offset
 
     def take(self, shape: Sequence[int]) -> Tensor:
         """The next uniforms, a fresh ``shape`` view the caller may overwrite."""
         count = math.prod(shape)
+        if native.available():
+            key, offset = self.reserve(count)
+            return native.fill_uniforms(torch.empty(shape, dtype=self.dtype), key, offset)
         if self._used + count > self._block.numel():
             self._block = draw_uniforms((max(self.block_size, count),), self.dtype, self.generator)
             self._used = 0
@@ -104,8 +138,10 @@ _worker: tuple[int, ThreadPoolExecutor] | None = None
 
 def draw_uniforms(shape: Sequence[int], dtype: torch.dtype, generator: torch.Generator) -> Tensor:
     """Uniforms on [0, 1) of ``shape`` from ``generator`` (and, when large, a generator seeded
-    from it), on torch's grid for ``dtype``."""
+    from it; with the native kernel, a Philox stream keyed from it), on torch's grid for ``dtype``."""
     out = torch.empty(shape, dtype=dtype)
+    if native.available():
+        return native.fill_uniforms(out, stream_key(generator), 0)
     if out.numel() < _SPLIT_SIZE:
         return out.uniform_(generator=generator)
     flat, half = out.view(-1), out.numel() // 2
