@@ -151,7 +151,7 @@ class MeanField(nn.Module):
         )
         implicit = graph and self.backward == "implicit" and not one_pass
         with torch.set_grad_enabled(graph and not implicit):
-            marginals = self._solve(problem)
+            marginals = self._solve_once(problem, classes[0]) if one_pass else self._solve(problem)
         if implicit:
             if self.converged:
                 marginals = self._attach_implicit(marginals, problem)
@@ -209,6 +209,14 @@ class MeanField(nn.Module):
                 start = resting_mean(model.layers[i], problem.batch, model.dtype)
             observed = problem.observed_units(i)
             marginals[i] = start if observed is None else torch.where(*observed, start)
+        return marginals
+
+    def _solve_once(self, problem: _Problem, layers: Sequence[int]) -> Marginals:
+        """The exact marginals when the free ``layers`` form one class without lateral couplings: one
+        update from the clamped layers alone (no start values to build, no residual to check)."""
+        marginals = dict(problem.clamped)
+        marginals.update(self._class_update(marginals, layers, problem.reduced()))
+        self.iterations, self.converged, self.residual = 1, True, 0.0
         return marginals
 
     def _solve(self, problem: _Problem) -> Marginals:
