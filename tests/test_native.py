@@ -138,6 +138,26 @@ def test_fill_may_be_split_over_threads(kernel):
     assert torch.equal(out, whole)
 
 
+def test_results_do_not_depend_on_the_number_of_threads(kernel):
+    """Built with OpenMP, large calls are shared among torch's threads chunk by chunk; the stream is
+    counter-based, so one thread and two give the same numbers and counts."""
+    p = torch.rand(300_007, generator=torch.Generator().manual_seed(3))
+    u = native.fill_uniforms(torch.empty(300_007), 9, 11)
+    p[::1000] = u[::1000] + UNIFORM_GRID[torch.float32] / 2  # in their grid cell where u < 1/2
+    threads = torch.get_num_threads()
+    results = []
+    try:
+        for count in (1, 2):
+            torch.set_num_threads(count)
+            out = torch.empty_like(p)
+            cells = native.bernoulli(p, out, 9, 11)
+            results.append((native.fill_uniforms(torch.empty(300_007), 9, 11), out, cells))
+    finally:
+        torch.set_num_threads(threads)
+    (u1, out1, cells1), (u2, out2, cells2) = results
+    assert torch.equal(u1, u2) and torch.equal(out1, out2) and cells1 == cells2 >= 100
+
+
 def probabilities_near_the_uniforms(u: torch.Tensor, generator: torch.Generator) -> torch.Tensor:
     """Random probabilities, with ``p`` inside the grid cell above ``u``, at ``u``, one grid step above,
     half a step below, 0, 1 and NaN at some positions."""

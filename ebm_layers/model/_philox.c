@@ -2,8 +2,9 @@
  * stream's definition). Philox: Salmon, Moraes, Dror, Shaw, "Parallel Random Numbers: As Easy as
  * 1, 2, 3", SC 2011.
  *
- * C99 (with AVX2 intrinsics when the target has AVX2), no threads. Built by native.py with -O3
- * (-march=native when the compiler takes it) and never with -ffast-math: p - u must round exactly as
+ * C99 (with AVX2 intrinsics when the target has AVX2; OpenMP threads when built with -fopenmp, see
+ * DEFINE_EXPORTS). Built by native.py with -O3 (-march=native when the compiler takes it) and never
+ * with -ffast-math: p - u must round exactly as
  * torch's float subtraction does. Contraction of a multiply into that subtraction (an FMA) cannot
  * change a result here, since every product below is exact (integers below 2^53 times powers of two).
  *
@@ -145,9 +146,9 @@ static inline void philox_batch(uint64_t first, const schedule_t *schedule, uint
         }                                                                                                   \
     } while (0)
 
-/* The kernels of one precision T (PER_BLOCK numbers per Philox block):
- *   ebm_uniform_SUFFIX(out, n, key, offset): out[j] = uniform number offset + j of the stream of key.
- *   ebm_bernoulli_SUFFIX(p, out, n, key, offset): with u that number and d = p[j] - u, out[j] = 1 if
+/* The kernels of one precision T (PER_BLOCK numbers per Philox block), over one range of the stream:
+ *   uniform_range_SUFFIX(out, n, key, offset): out[j] = uniform number offset + j of the stream of key.
+ *   bernoulli_range_SUFFIX(p, out, n, key, offset): with u that number and d = p[j] - u, out[j] = 1 if
  *   d >= GRID else 0; returns the number of j with 0 < d < GRID. out may be p. NaN p: out 0, not
  *   counted.
  * The Bernoulli differences go through a local array so that the loop reading p and the loop writing
@@ -167,10 +168,10 @@ static inline void philox_batch(uint64_t first, const schedule_t *schedule, uint
         }                                                                                                   \
         return in_cell;                                                                                     \
     }                                                                                                       \
-    void ebm_uniform_##SUFFIX(T *out, int64_t n, uint64_t key, uint64_t offset) {                           \
+    static void uniform_range_##SUFFIX(T *out, int64_t n, uint64_t key, uint64_t offset) {                  \
         WALK_STREAM(PER_BLOCK, fill_##SUFFIX(out + j, words, from, take));                                  \
     }                                                                                                       \
-    int64_t ebm_bernoulli_##SUFFIX(const T *p, T *out, int64_t n, uint64_t key, uint64_t offset) {          \
+    static int64_t bernoulli_range_##SUFFIX(const T *p, T *out, int64_t n, uint64_t key, uint64_t offset) { \
         int64_t count = 0;                                                                                  \
         WALK_STREAM(PER_BLOCK, count += compare_##SUFFIX(p + j, out + j, words, from, take));               \
         return count;                                                                                       \
@@ -178,3 +179,35 @@ static inline void philox_batch(uint64_t first, const schedule_t *schedule, uint
 
 DEFINE_KERNELS(f32, float, 4, UNIFORM_F32, 0x1p-24f)
 DEFINE_KERNELS(f64, double, 2, UNIFORM_F64, 0x1p-53)
+
+/* The exported kernels: ebm_uniform_SUFFIX(out, n, key, offset) and ebm_bernoulli_SUFFIX(p, out, n, key,
+ * offset) are the range kernels above over chunks of CHUNK numbers. Built with -fopenmp, the chunks of
+ * a call of at least two are shared among OpenMP threads. The process's OpenMP runtime is torch's
+ * (torch loads its libgomp.so.1 first, and this library's libgomp.so.1 resolves to it), so the chunks
+ * run on the threads torch's own kernels use, with torch's thread count: measured here, two threads
+ * halve a draw even right after a matrix product, where a thread of our own competed with torch's
+ * spinning worker and lost. The stream is counter-based, so results do not depend on the split. */
+#define CHUNK 16384
+
+#define DEFINE_EXPORTS(SUFFIX, T)                                                                           \
+    void ebm_uniform_##SUFFIX(T *out, int64_t n, uint64_t key, uint64_t offset) {                           \
+        const int64_t chunks = (n + CHUNK - 1) / CHUNK;                                                     \
+        _Pragma("omp parallel for if (chunks > 1) schedule(static)")                                        \
+        for (int64_t c = 0; c < chunks; c++) {                                                              \
+            const int64_t start = c * CHUNK, m = n - start < CHUNK ? n - start : CHUNK;                     \
+            uniform_range_##SUFFIX(out + start, m, key, offset + (uint64_t)start);                          \
+        }                                                                                                   \
+    }                                                                                                       \
+    int64_t ebm_bernoulli_##SUFFIX(const T *p, T *out, int64_t n, uint64_t key, uint64_t offset) {          \
+        const int64_t chunks = (n + CHUNK - 1) / CHUNK;                                                     \
+        int64_t count = 0;                                                                                  \
+        _Pragma("omp parallel for if (chunks > 1) reduction(+ : count) schedule(static)")                   \
+        for (int64_t c = 0; c < chunks; c++) {                                                              \
+            const int64_t start = c * CHUNK, m = n - start < CHUNK ? n - start : CHUNK;                     \
+            count += bernoulli_range_##SUFFIX(p + start, out + start, m, key, offset + (uint64_t)start);    \
+        }                                                                                                   \
+        return count;                                                                                       \
+    }
+
+DEFINE_EXPORTS(f32, float)
+DEFINE_EXPORTS(f64, double)

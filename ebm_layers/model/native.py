@@ -48,8 +48,9 @@ __all__ = ["available", "bernoulli", "fill_uniforms", "unavailable_reason"]
 
 _SOURCE = Path(__file__).with_name("_philox.c")
 _BASE_FLAGS = ["-O3", "-fPIC", "-shared", "-std=c99"]
-# -march=native first (AVX2 where the CPU has it); without it if the compiler refuses.
-_FLAG_SETS = (["-march=native", *_BASE_FLAGS], _BASE_FLAGS)
+# -march=native (AVX2 where the CPU has it) and -fopenmp (torch's threads, see _philox.c) first;
+# without them if the compiler refuses.
+_FLAG_SETS = (["-march=native", "-fopenmp", *_BASE_FLAGS], ["-march=native", *_BASE_FLAGS], _BASE_FLAGS)
 _SUFFIXES = {torch.float32: "f32", torch.float64: "f64"}
 _LIMIT = 1 << 64
 # The kernels by dtype: (fill, bernoulli) ctypes functions.
