@@ -342,6 +342,50 @@ def test_float32_models_keep_the_small_differences_of_one_annealing_step(step):
         assert float(((naive - reference) / reference.abs()).abs().max()) > 10 * tolerance
 
 
+class ShiftedBinaryLayer(el.BinaryLayer):
+    """0/1 units whose own energy is not zero at x = 0: ``U(x) = -b . x + k . (1 - x)``, ``k`` learned."""
+
+    def __init__(self, size: int) -> None:
+        super().__init__(size, dtype=F64)
+        self.shift = torch.nn.Parameter(torch.zeros(size, dtype=F64))
+
+    def energy(self, x: Tensor) -> Tensor:
+        return super().energy(x) + (1 - x) @ self.shift
+
+    def logits(self, input: Tensor) -> Tensor:
+        return input + self.bias + self.shift
+
+    def log_partition(self, input: Tensor) -> Tensor:
+        return (torch.nn.functional.softplus(self.logits(input)) - self.shift).sum(-1)
+
+    def base_parameters(self, data: Tensor | None = None) -> dict[str, Tensor]:
+        return {**super().base_parameters(data), "shift": torch.zeros_like(self.shift.detach())}
+
+
+def test_log_ratio_of_0_1_layers_equals_the_difference_of_log_partitions():
+    """The step's log ratio for layers of 0/1 units (``logits(input) = input + logits(0)``, the
+    log-partition a sum of softplus terms plus ``-sum U_j(0)``) against the plain difference of the
+    layer's own float64 log-partitions (mathematics), with a layer whose ``U(0)`` is not zero and
+    moves along the path; negative control: the same without the ``-sum U_j(0)`` terms."""
+    model = el.EnergyModel(
+        [el.BinaryLayer(6, dtype=F64), ShiftedBinaryLayer(5)], [el.DenseCoupling(0, 1, 6, 5, dtype=F64)]
+    )
+    with torch.no_grad():
+        for parameter in model.parameters():
+            parameter.normal_(0.0, 1.0, generator=seeded(30))
+    path = partition._AnnealingPath(model, partition._base_parameters(model, None, "uniform"))
+    with torch.no_grad():
+        terms = path.terms(path.draw_base(40, seeded(31)))
+        ours = path.log_ratio(0.6, 0.5, terms)
+        log_partitions = path._log_partitions(0.6, terms) - path._log_partitions(0.5, terms)
+        reference = 0.1 * terms.shift + log_partitions
+        assert torch.allclose(ours, reference, rtol=1e-10, atol=1e-12)
+        # Negative control: the constant is the shift's interpolated sum, 0.1 * sum(k) here.
+        constant = path._zero_input(1, 0.6)[1] - path._zero_input(1, 0.5)[1]
+        assert abs(float(constant) + 0.1 * float(model.layers[1].shift.sum())) < 1e-12
+        assert not torch.allclose(ours - constant, reference, rtol=1e-6)
+
+
 def test_same_seed_same_estimate():
     model = randomize(build("chain3", (4, 3, 2)), seed=19, scale=1.0)
     data = binary((30, 4), seed=20)

@@ -9,6 +9,7 @@ from dataclasses import dataclass, field
 import torch
 from torch import Tensor
 from torch.autograd.function import once_differentiable
+from torch.nn.functional import softplus
 from tqdm.auto import tqdm
 
 from .._checks import check_model, check_size
@@ -207,6 +208,7 @@ class _AnnealingPath:
         self.wide_model = {name: p.detach().to(torch.float64) for name, p in model.named_parameters()}
         self.wide_base = {name: value.to(torch.float64) for name, value in base.items()}
         self._interpolated: dict[tuple[float, bool], dict[str, Tensor]] = {}
+        self._zero_inputs: dict[tuple[int, float], tuple[Tensor, Tensor]] = {}
         with substituted(model, {**self.wide_model, **self.wide_base}):
             self.log_z_base = float(
                 sum(layer.log_partition(_zeros(1, layer, torch.float64)).sum() for layer in model.layers)
@@ -264,8 +266,49 @@ class _AnnealingPath:
 
     def log_ratio(self, beta: float, other: float, terms: _Terms) -> Tensor:
         """``log f_beta - log f_other`` ``(B,)`` float64 (the base term cancels)."""
-        summed = self._log_partitions(beta, terms) - self._log_partitions(other, terms)
-        return (beta - other) * terms.shift + summed
+        model = self.model
+        total = (beta - other) * terms.shift
+        generic = {s: u for s, u in terms.inputs.items() if not hasattr(model.layers[s], "logits")}
+        if generic:
+            total = total + self._log_partitions(beta, _Terms(generic, terms.base, terms.shift))
+            total = total - self._log_partitions(other, _Terms(generic, terms.base, terms.shift))
+        for s, u in terms.inputs.items():
+            if s not in generic:
+                total = total + self._log_partition_change(s, u, beta, other)
+        return total
+
+    def _log_partition_change(self, s: int, u: Tensor, beta: float, other: float) -> Tensor:
+        """``log_partition_s(beta * u; theta_beta) - log_partition_s(other * u; theta_other)`` ``(B,)``
+        float64, for a layer of 0/1 units (one with ``logits``).
+
+        Independent 0/1 units have ``logits(input) = input + logits(0)`` and ``log_partition(input) =
+        sum_j softplus(logits_j(input)) + c`` with ``c = -sum_j U_j(0)``, and
+        ``softplus(a) - softplus(b) = log1p(sigmoid(b) * expm1(a - b))`` (mathematics). The step
+        ``a - b = (beta - other) * u + logits_beta(0) - logits_other(0)`` is formed without
+        subtracting two large numbers, so the functions keep each term's relative accuracy in the
+        model's dtype: a fraction of the cost of two float64 softplus passes on this CPU.
+        """
+        (offset, constant), (other_offset, other_constant) = (self._zero_input(s, b) for b in (beta, other))
+        dtype = self.model.dtype
+        step = torch.add((offset - other_offset).to(dtype), u, alpha=beta - other)
+        logits = torch.add(other_offset.to(dtype), u, alpha=other)
+        change = torch.log1p_(logits.sigmoid_().mul_(step.expm1_()))
+        return change.sum(-1, dtype=torch.float64) + (constant - other_constant)
+
+    def _zero_input(self, s: int, beta: float) -> tuple[Tensor, Tensor]:
+        """Layer ``s``'s logits ``(1, n)`` and ``c`` ``(1,)`` under no input at ``beta``, float64
+        (each beta is asked for by two successive steps; the last few are kept)."""
+        key = (s, beta)
+        if key not in self._zero_inputs:
+            if len(self._zero_inputs) >= 6:
+                del self._zero_inputs[next(iter(self._zero_inputs))]
+            layer = self.model.layers[s]
+            zero = torch.zeros(1, layer.size, dtype=torch.float64)
+            with substituted(self.model, self.layer_parameters(beta, wide=True)):
+                logits = layer.logits(zero).detach()
+                constant = (layer.log_partition(zero) - softplus(logits).sum(-1)).detach()
+            self._zero_inputs[key] = (logits, constant)
+        return self._zero_inputs[key]
 
     def transition(
         self, beta: float, states: list[Tensor | None], terms: _Terms, generator: F.Uniforms
