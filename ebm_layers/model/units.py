@@ -45,9 +45,11 @@ class UnitLayer(nn.Module):
     statistics over the factorised distribution with that mean (by default their values at the
     mean, exact for units whose term is linear in ``x``); ``base_parameters(data)`` gives the
     independent base model annealing and tempering start from. Layers of 0/1 units may define
-    ``logits(input)``, the log-odds ``(B, n)`` of each unit being on (``mean`` is their sigmoid): Gibbs
+    ``logits(input)``, the log-odds ``(B, n)`` of each unit being on (``mean`` is their sigmoid;
+    ``logits(input) - input`` does not depend on the input, as for any independent 0/1 units): Gibbs
     sampling then draws them under a lateral coupling class by class at the cost of the products
-    alone (:mod:`ebm_layers.phases.lateral`).
+    alone (:mod:`ebm_layers.phases.lateral`), and annealing takes the change of their log-partition
+    from one step to the next from the logits, without two float64 log-partition passes.
 
     Annealing and tempering interpolate the parameters ``base_parameters`` returns
     (``beta * theta + (1 - beta) * theta_0``, possibly one row per chain) and keep the others; that
