@@ -70,7 +70,7 @@ def sample_bernoulli(probabilities: Tensor, generator: torch.Generator | Uniform
     if probabilities.dtype not in UNIFORM_GRID:
         return torch.bernoulli(probabilities, generator=generator)
     same_stream = source is not None and source.dtype == probabilities.dtype
-    if native.available():
+    if probabilities.is_cpu and native.available():
         p = probabilities.contiguous()
         key, offset = source.reserve(p.numel()) if same_stream else (stream_key(generator), 0)
         on = torch.empty_like(p)
