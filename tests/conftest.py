@@ -1,15 +1,23 @@
-"""Shared fixtures: a seeded generator, small models, the binarised digits."""
+"""Shared fixtures: a seeded generator, small models, the binarised digits, the native kernel."""
 
 import pytest
 import torch
 
 import ebm_layers as el
+from ebm_layers.model import native
 from tests.helpers import binarised_digits, make_lateral_model
 
 
 @pytest.fixture
 def generator() -> torch.Generator:
     return torch.Generator().manual_seed(1234)
+
+
+@pytest.fixture
+def native_kernel() -> None:
+    """Skips a test of the native kernel where it cannot be built (no C compiler, say)."""
+    if not native.available():
+        pytest.skip(f"the native kernel is not available here: {native.unavailable_reason}")
 
 
 @pytest.fixture

@@ -24,8 +24,8 @@ def draw_path(request, monkeypatch):
     """Run a test on the native kernel's path and on torch's own uniforms."""
     if request.param == "torch":
         monkeypatch.setenv("EBM_LAYERS_NATIVE", "0")
-    elif not native.available():
-        pytest.skip(f"the native kernel is not available here: {native.unavailable_reason}")
+    else:
+        request.getfixturevalue("native_kernel")
     return request.param
 
 
@@ -132,9 +132,7 @@ def test_uniform_blocks_hand_out_one_draw_in_order(monkeypatch):
     assert draws.dtype == torch.float64
 
 
-def test_native_blocks_hand_out_one_stream_in_order():
-    if not native.available():
-        pytest.skip(f"the native kernel is not available here: {native.unavailable_reason}")
+def test_native_blocks_hand_out_one_stream_in_order(native_kernel):
     uniforms = F.Uniforms(torch.Generator().manual_seed(8), torch.float32, block_size=10)
     parts = [uniforms.take((2, 3)), uniforms.take((4,)), uniforms.take((25,))]
     key = F.stream_key(torch.Generator().manual_seed(8))  # one number of the generator keys the stream
@@ -146,11 +144,9 @@ def test_native_blocks_hand_out_one_stream_in_order():
     assert torch.equal(on, (p - native.fill_uniforms(torch.empty(7), key, 35) > 0).float())
 
 
-def test_native_draws_decide_the_grid_cell_exactly():
+def test_native_draws_decide_the_grid_cell_exactly(native_kernel):
     # The fused kernel only counts the units whose uniform fell in their probability's grid cell;
     # sample_bernoulli must then decide those with probability (p - u) / grid, as the torch path does.
-    if not native.available():
-        pytest.skip(f"the native kernel is not available here: {native.unavailable_reason}")
     grid = UNIFORM_GRID[torch.float32]
     u = native.fill_uniforms(torch.empty(400_000), F.stream_key(torch.Generator().manual_seed(12)), 0)
     in_cell = u < 0.25  # there p = u + grid / 4 is representable, in u's cell

@@ -64,12 +64,6 @@ def reference_uniforms(n: int, dtype: torch.dtype, key: int, offset: int) -> tor
     return torch.from_numpy(grid_units.astype(np.float64) * 2.0**-53)
 
 
-@pytest.fixture
-def kernel() -> None:
-    if not native.available():
-        pytest.skip(f"native kernel unavailable: {native.unavailable_reason}")
-
-
 def test_reference_known_answers():
     # Philox4x32-10 known-answer vectors, from memory (counter words 0..3, key words 0..1).
     vectors = [
@@ -87,7 +81,7 @@ def test_reference_known_answers():
         assert words.tolist() == list(expected)
 
 
-def test_kernel_words_through_float32_uniforms(kernel):
+def test_kernel_words_through_float32_uniforms(native_kernel):
     # u * 2^24 == w >> 8 exactly: the first block of key 0 is the first known-answer vector.
     u = native.fill_uniforms(torch.empty(4), 0, 0)
     assert (u.double() * 2**24).long().tolist() == [
@@ -99,7 +93,7 @@ def test_kernel_words_through_float32_uniforms(kernel):
 
 
 @pytest.mark.parametrize("dtype", DTYPES)
-def test_uniforms_equal_the_reference(kernel, dtype):
+def test_uniforms_equal_the_reference(native_kernel, dtype):
     for key in KEYS:
         for offset in OFFSETS:
             for n in LENGTHS:
@@ -108,7 +102,7 @@ def test_uniforms_equal_the_reference(kernel, dtype):
 
 
 @pytest.mark.parametrize("dtype", DTYPES)
-def test_far_stream_positions(kernel, dtype):
+def test_far_stream_positions(native_kernel, dtype):
     """Counters past 2^32 (the high counter word) and up to the last numbers of the stream."""
     for offset in (2**34 + 1, 2**63 + 3, 2**64 - 9):
         u = native.fill_uniforms(torch.empty(9, dtype=dtype), 99, offset)
@@ -116,7 +110,7 @@ def test_far_stream_positions(kernel, dtype):
 
 
 @pytest.mark.parametrize("dtype", DTYPES)
-def test_consecutive_pieces_continue_one_stream(kernel, dtype):
+def test_consecutive_pieces_continue_one_stream(native_kernel, dtype):
     whole = native.fill_uniforms(torch.empty(5000, dtype=dtype), 42, 17)
     pieces, start = [], 17
     for n in (1, 2, 3, 0, 61, 1000, 3933):
@@ -125,7 +119,7 @@ def test_consecutive_pieces_continue_one_stream(kernel, dtype):
     assert torch.equal(torch.cat(pieces), whole)
 
 
-def test_fill_may_be_split_over_threads(kernel):
+def test_fill_may_be_split_over_threads(native_kernel):
     """ctypes releases the GIL: halves filled at the same time equal one fill."""
     whole = native.fill_uniforms(torch.empty(400_001), 5, 0)
     out = torch.empty(400_001)
@@ -138,7 +132,7 @@ def test_fill_may_be_split_over_threads(kernel):
     assert torch.equal(out, whole)
 
 
-def test_results_do_not_depend_on_the_number_of_threads(kernel):
+def test_results_do_not_depend_on_the_number_of_threads(native_kernel):
     """Built with OpenMP, large calls are shared among torch's threads chunk by chunk; the stream is
     counter-based, so one thread and two give the same numbers and counts."""
     p = torch.rand(300_007, generator=torch.Generator().manual_seed(3))
@@ -172,7 +166,7 @@ def probabilities_near_the_uniforms(u: torch.Tensor, generator: torch.Generator)
 
 
 @pytest.mark.parametrize("dtype", DTYPES)
-def test_bernoulli_is_the_eager_comparison(kernel, dtype, generator):
+def test_bernoulli_is_the_eager_comparison(native_kernel, dtype, generator):
     grid, key, offset = UNIFORM_GRID[dtype], 31, 3
     u = native.fill_uniforms(torch.empty(37, 101, dtype=dtype), key, offset)
     p = probabilities_near_the_uniforms(u, generator)
@@ -211,12 +205,12 @@ def uniformity_failures(u: np.ndarray) -> list[str]:
     return failures
 
 
-def test_uniform_statistics(kernel):
+def test_uniform_statistics(native_kernel):
     u = native.fill_uniforms(torch.empty(1_000_000), 20240, 0).numpy().astype(np.float64)
     assert uniformity_failures(u) == []
 
 
-def test_uniformity_checks_catch_bad_streams(kernel):
+def test_uniformity_checks_catch_bad_streams(native_kernel):
     u = native.fill_uniforms(torch.empty(1_000_000), 20240, 0).numpy().astype(np.float64)
     units = (u * 2**24).astype(np.int64)
     counter = (np.arange(len(u)) % 2**24) * 2.0**-24  # a plain counter
@@ -256,7 +250,7 @@ def test_build_failures_are_reasons(tmp_path):
     assert "cache directory" in native._load(tmp_path / "file" / "cache", ["cc"])
 
 
-def test_portable_build_is_cached_and_reused(kernel, tmp_path, generator):
+def test_portable_build_is_cached_and_reused(native_kernel, tmp_path, generator):
     """The build without the AVX2 path (-U__AVX2__) gives the same stream; a second load reuses it."""
     compiler = [*native._compiler(), "-U__AVX2__"]
     kernels = native._load(tmp_path, compiler)
@@ -277,7 +271,7 @@ def test_portable_build_is_cached_and_reused(kernel, tmp_path, generator):
         assert count == native.bernoulli(p, expected, KEYS[2], 5) > 0 and torch.equal(out, expected)
 
 
-def test_bad_input(kernel):
+def test_bad_input(native_kernel):
     good = torch.empty(4)
     with pytest.raises(TypeError, match="out has dtype torch.int32"):
         native.fill_uniforms(torch.empty(4, dtype=torch.int32), 0, 0)

@@ -377,7 +377,7 @@ def test_log_ratio_of_0_1_layers_equals_the_difference_of_log_partitions():
     with torch.no_grad():
         terms = path.terms(path.draw_base(40, seeded(31)))
         ours = path.log_ratio(0.6, 0.5, terms)
-        log_partitions = path._log_partitions(0.6, terms) - path._log_partitions(0.5, terms)
+        log_partitions = path._log_partitions(0.6, terms.inputs) - path._log_partitions(0.5, terms.inputs)
         reference = 0.1 * terms.shift + log_partitions
         assert torch.allclose(ours, reference, rtol=1e-10, atol=1e-12)
         # Negative control: the constant is the shift's interpolated sum, 0.1 * sum(k) here.

@@ -3,8 +3,9 @@
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Hashable, Sequence
 from dataclasses import dataclass, field
+from typing import TypeVar
 
 import torch
 from torch import Tensor
@@ -17,6 +18,7 @@ from .._random import resolve_generator
 from ..model import functional as F
 from ..model.energy_model import EnergyModel
 from ..model.parameters import substituted
+from ..model.units import has_logits
 from ..phases.exact import MAX_STATES, exact_moments
 from ..phases.gibbs import gibbs_sweep
 from ..phases.mean_field import MeanField
@@ -29,6 +31,8 @@ __all__ = [
     "exact_log_partition",
     "reverse_ais_log_likelihood",
 ]
+
+T = TypeVar("T")
 
 
 class _ExactLogPartition(torch.autograd.Function):
@@ -215,20 +219,16 @@ class _AnnealingPath:
             )
 
     def layer_parameters(self, beta: float, wide: bool = False) -> dict[str, Tensor]:
-        """The layers' parameters at ``beta`` (in float64 when ``wide``); the last few are kept, as
-        each beta is asked for by two successive steps."""
-        key = (beta, wide)
-        if key not in self._interpolated:
-            if len(self._interpolated) >= 6:  # the oldest goes (dicts keep insertion order)
-                del self._interpolated[next(iter(self._interpolated))]
+        """The layers' parameters at ``beta`` (in float64 when ``wide``; the last few kept)."""
+
+        def interpolate() -> dict[str, Tensor]:
             target = {name: self.wide_model[name] for name in self.base} if wide else self.target
             base = self.wide_base if wide else self.base
-            self._interpolated[key] = (
-                target
-                if beta == 1.0
-                else {name: (1.0 - beta) * base[name] + beta * value for name, value in target.items()}
-            )
-        return self._interpolated[key]
+            if beta == 1.0:
+                return target
+            return {name: (1.0 - beta) * base[name] + beta * value for name, value in target.items()}
+
+        return _recent(self._interpolated, (beta, wide), interpolate)
 
     def draw_base(self, num_chains: int, generator: torch.Generator) -> list[Tensor | None]:
         """Kept layers drawn from the base model (each layer alone); summed layers are ``None``."""
@@ -252,29 +252,29 @@ class _AnnealingPath:
             model_term = model.joint_energy(wide)
         return _Terms(inputs, -base_term, base_term - model_term)
 
-    def _log_partitions(self, beta: float, terms: _Terms) -> Tensor | float:
-        """``sum_s log_partition_s(beta * u_s; theta_beta)`` ``(B,)`` in float64."""
+    def _log_partitions(self, beta: float, inputs: dict[int, Tensor]) -> Tensor | float:
+        """``sum_s log_partition_s(beta * u_s; theta_beta)`` ``(B,)`` in float64 over the summed layers
+        ``s`` of ``inputs`` (``{s: u_s}``)."""
         model, total = self.model, 0.0
         with substituted(model, self.layer_parameters(beta, wide=True)):  # only the layers' terms
-            for s, u in terms.inputs.items():
+            for s, u in inputs.items():
                 total = total + model.layers[s].log_partition(beta * u.to(torch.float64))
         return total
 
     def log_f(self, beta: float, terms: _Terms) -> Tensor:
         """``log f_beta`` ``(B,)`` float64 of the states ``terms`` were computed from."""
-        return terms.base + beta * terms.shift + self._log_partitions(beta, terms)
+        return terms.base + beta * terms.shift + self._log_partitions(beta, terms.inputs)
 
     def log_ratio(self, beta: float, other: float, terms: _Terms) -> Tensor:
         """``log f_beta - log f_other`` ``(B,)`` float64 (the base term cancels)."""
-        model = self.model
-        total = (beta - other) * terms.shift
-        generic = {s: u for s, u in terms.inputs.items() if not hasattr(model.layers[s], "logits")}
-        if generic:
-            total = total + self._log_partitions(beta, _Terms(generic, terms.base, terms.shift))
-            total = total - self._log_partitions(other, _Terms(generic, terms.base, terms.shift))
+        total, generic = (beta - other) * terms.shift, {}
         for s, u in terms.inputs.items():
-            if s not in generic:
+            if has_logits(self.model.layers[s]):
                 total = total + self._log_partition_change(s, u, beta, other)
+            else:
+                generic[s] = u
+        if generic:
+            total = total + self._log_partitions(beta, generic) - self._log_partitions(other, generic)
         return total
 
     def _log_partition_change(self, s: int, u: Tensor, beta: float, other: float) -> Tensor:
@@ -297,18 +297,16 @@ class _AnnealingPath:
 
     def _zero_input(self, s: int, beta: float) -> tuple[Tensor, Tensor]:
         """Layer ``s``'s logits ``(1, n)`` and ``c`` ``(1,)`` under no input at ``beta``, float64
-        (each beta is asked for by two successive steps; the last few are kept)."""
-        key = (s, beta)
-        if key not in self._zero_inputs:
-            if len(self._zero_inputs) >= 6:
-                del self._zero_inputs[next(iter(self._zero_inputs))]
+        (the last few kept)."""
+
+        def evaluate() -> tuple[Tensor, Tensor]:
             layer = self.model.layers[s]
             zero = torch.zeros(1, layer.size, dtype=torch.float64)
             with substituted(self.model, self.layer_parameters(beta, wide=True)):
                 logits = layer.logits(zero).detach()
-                constant = (layer.log_partition(zero) - softplus(logits).sum(-1)).detach()
-            self._zero_inputs[key] = (logits, constant)
-        return self._zero_inputs[key]
+                return logits, (layer.log_partition(zero) - softplus(logits).sum(-1)).detach()
+
+        return _recent(self._zero_inputs, (s, beta), evaluate)
 
     def transition(
         self, beta: float, states: list[Tensor | None], terms: _Terms, generator: F.Uniforms
@@ -325,6 +323,17 @@ class _AnnealingPath:
         gibbs_sweep(
             model, states, generator, clamped=self.summed, parameters=parameters, inverse_temperature=beta
         )
+
+
+def _recent(cache: dict[Hashable, T], key: Hashable, make: Callable[[], T]) -> T:
+    """``cache[key]``, made by ``make()`` when missing; only the last few entries are kept (the
+    oldest goes first: dicts keep insertion order), as each beta is asked for by two successive
+    annealing steps."""
+    if key not in cache:
+        if len(cache) >= 6:
+            del cache[next(iter(cache))]
+        cache[key] = make()
+    return cache[key]
 
 
 def _zeros(batch: int, layer, dtype: torch.dtype) -> Tensor:

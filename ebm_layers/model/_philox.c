@@ -23,26 +23,35 @@
 #define LANES 12          /* Philox blocks per batch (8 and 16 measured slower) */
 #define WORDS (4 * LANES) /* 32-bit words per batch */
 
-/* philox_batch(first, schedule, words): words[4 l + r] = word r of block first + l (mod 2^64) of the
- * stream, for 0 <= l < LANES: Philox of counter words (lo32(first + l), hi32(first + l), 0, 0) under
- * the round keys in schedule (made once per call by key_schedule from key words (lo32(key),
- * hi32(key))). */
+/* The round keys of key words (lo32(key), hi32(key)): with AVX2 each in every 64-bit lane, the form
+ * the vector philox_batch reads; otherwise plain words. */
 #if defined(__AVX2__)
 #include <immintrin.h>
-
-#define GROUPS (LANES / 4) /* independent groups of 4 blocks, to hide the multiplies' latency */
+typedef __m256i round_key_t;
+#define ROUND_KEY(k) _mm256_set1_epi64x(k)
+#else
+typedef uint32_t round_key_t;
+#define ROUND_KEY(k) (k)
+#endif
 
 typedef struct {
-    __m256i key0[PHILOX_ROUNDS], key1[PHILOX_ROUNDS];
+    round_key_t key0[PHILOX_ROUNDS], key1[PHILOX_ROUNDS];
 } schedule_t;
 
 static inline void key_schedule(uint64_t key, schedule_t *schedule) {
     uint32_t k0 = (uint32_t)key, k1 = (uint32_t)(key >> 32);
     for (int round = 0; round < PHILOX_ROUNDS; round++, k0 += PHILOX_W0, k1 += PHILOX_W1) {
-        schedule->key0[round] = _mm256_set1_epi64x(k0);
-        schedule->key1[round] = _mm256_set1_epi64x(k1);
+        schedule->key0[round] = ROUND_KEY(k0);
+        schedule->key1[round] = ROUND_KEY(k1);
     }
 }
+
+/* philox_batch(first, schedule, words): words[4 l + r] = word r of block first + l (mod 2^64) of the
+ * stream, for 0 <= l < LANES: Philox of counter words (lo32(first + l), hi32(first + l), 0, 0) under
+ * the round keys in schedule (made once per call by key_schedule from key words (lo32(key),
+ * hi32(key))). */
+#if defined(__AVX2__)
+#define GROUPS (LANES / 4) /* independent groups of 4 blocks, to hide the multiplies' latency */
 
 /* One block per 64-bit lane, each counter word in the low half of its lane. The high halves carry
  * garbage that never reaches a result: _mm256_mul_epu32 reads only the low halves, and only the low
@@ -82,18 +91,6 @@ static inline void philox_batch(uint64_t first, const schedule_t *schedule, uint
     }
 }
 #else
-typedef struct {
-    uint32_t key0[PHILOX_ROUNDS], key1[PHILOX_ROUNDS];
-} schedule_t;
-
-static inline void key_schedule(uint64_t key, schedule_t *schedule) {
-    uint32_t k0 = (uint32_t)key, k1 = (uint32_t)(key >> 32);
-    for (int round = 0; round < PHILOX_ROUNDS; round++, k0 += PHILOX_W0, k1 += PHILOX_W1) {
-        schedule->key0[round] = k0;
-        schedule->key1[round] = k1;
-    }
-}
-
 static inline void philox_batch(uint64_t first, const schedule_t *schedule, uint32_t words[WORDS]) {
     for (int l = 0; l < LANES; l++) {
         uint64_t counter = first + (uint64_t)l;

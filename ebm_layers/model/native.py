@@ -79,8 +79,7 @@ def fill_uniforms(out: Tensor, key: int, offset: int) -> Tensor:
     offset + out.numel() - 1`` of the stream of ``key``; returns ``out``."""
     fill, _ = _kernels(out, "out")[out.dtype]
     key, offset = _stream_position(key, offset, out.numel())
-    # ctypes releases the GIL during the call: large fills may be split over threads by offset.
-    fill(out.data_ptr(), out.numel(), key, offset)
+    fill(out.data_ptr(), out.numel(), key, offset)  # on torch's OpenMP threads when large (_philox.c)
     return out
 
 

@@ -12,7 +12,7 @@ from .._checks import check_size
 from . import functional as F
 from .parameters import autograd_statistics
 
-__all__ = ["RATE_CLIP", "BinaryLayer", "UnitLayer", "resting_mean"]
+__all__ = ["RATE_CLIP", "BinaryLayer", "UnitLayer", "has_logits", "resting_mean"]
 
 # Base rates of binary data are clipped to [RATE_CLIP, 1 - RATE_CLIP] for an annealing base model.
 RATE_CLIP = 1e-3
@@ -122,6 +122,11 @@ class UnitLayer(nn.Module):
         parameter = next(self.parameters(), None)
         dtype = torch.get_default_dtype() if parameter is None else parameter.dtype
         return self.sample(torch.zeros(batch, self.size, dtype=dtype), generator)
+
+
+def has_logits(layer: UnitLayer) -> bool:
+    """Whether ``layer`` has the optional ``logits`` hook of 0/1 units (see :class:`UnitLayer`)."""
+    return callable(getattr(layer, "logits", None))
 
 
 @torch.no_grad()

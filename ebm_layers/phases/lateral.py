@@ -28,6 +28,7 @@ from torch import Tensor
 from ..model import functional as F
 from ..model.couplings import LateralCoupling
 from ..model.energy_model import EnergyModel
+from ..model.units import has_logits
 
 __all__ = ["can_sample_fast", "sample_lateral_layer"]
 
@@ -80,7 +81,7 @@ def can_sample_fast(model: EnergyModel, target: int) -> bool:
     lateral coupling take the generic :meth:`EnergyModel.update_layer`."""
     layer, lateral = model.layers[target], model.lateral_coupling(target)
     return (
-        callable(getattr(layer, "logits", None))
+        has_logits(layer)
         and isinstance(lateral, LateralCoupling)
         and lateral.free_weight().ndim == 2
         and model.dtype in (torch.float32, torch.float64)
